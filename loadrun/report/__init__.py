@@ -1,0 +1,1 @@
+"""Views of results: the terminal (rich) and, later, files."""

@@ -1,0 +1,401 @@
+"""Routes and response bodies of the mock server, on top of the engine.
+
+Routes:
+
+- ``POST /v1/chat/completions`` and ``POST /v1/completions``: one engine sequence per
+  request. Streaming answers are server-sent events over chunked transfer encoding: for
+  chat, a role chunk at once (not a token), then one content chunk per token at the end of
+  each engine step, then (in the same write as the last token) a finish chunk, a usage
+  chunk if ``stream_options.include_usage``, ``data: [DONE]`` and the last HTTP chunk.
+  Text completions have no role chunk. Every chunk carries ``mock_sent_ns``, the server's
+  ``time.perf_counter_ns()`` right before the write, so a client on the same host can
+  measure its own receive delay. Non-streaming answers come when the sequence finishes.
+- ``GET /v1/models``, ``GET /health``, ``GET /mock/stats``.
+- Errors: ``{"error": {"message", "type", "param", "code"}}`` with 400, 404 or 405.
+
+Hot path: a content chunk is three byte strings joined (the request's cached head, the
+word's cached body, the timestamp), with no dict building per token.
+"""
+
+from __future__ import annotations
+
+import itertools
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+from mock_server import jsoncodec
+from mock_server.engine import Engine
+from mock_server.http import Request, Responder
+from mock_server.scheduler import AdmissionRejected, Sequence
+from mock_server.stats import HttpCounters, stats_document
+from mock_server.text import VOCABULARY, choose_word_indices, count_tokens
+
+_DONE = b"data: [DONE]\n\n"
+_CHAT_CHUNK_OBJECT = "chat.completion.chunk"
+_COMPLETION_OBJECT = "text_completion"
+
+# Per-word tails of a content chunk, after the request's head ('..."choices":[').
+_CHAT_WORD_BODIES: tuple[bytes, ...] = tuple(
+    b'{"index":0,"delta":{"content":"%b "},"finish_reason":null}],"mock_sent_ns":'
+    % word.encode("ascii")
+    for word in VOCABULARY
+)
+_COMPLETION_WORD_BODIES: tuple[bytes, ...] = tuple(
+    b'{"index":0,"text":"%b ","finish_reason":null,"logprobs":null}],"mock_sent_ns":'
+    % word.encode("ascii")
+    for word in VOCABULARY
+)
+_CHAT_ROLE_BODY = (
+    b'{"index":0,"delta":{"role":"assistant","content":""},"finish_reason":null}],"mock_sent_ns":'
+)
+_CHAT_FINISH_BODIES = {
+    reason: b'{"index":0,"delta":{},"finish_reason":"%b"}],"mock_sent_ns":' % reason.encode()
+    for reason in ("stop", "length")
+}
+_COMPLETION_FINISH_BODIES = {
+    reason: b'{"index":0,"text":"","finish_reason":"%b","logprobs":null}],"mock_sent_ns":'
+    % reason.encode()
+    for reason in ("stop", "length")
+}
+
+
+class InvalidRequest(Exception):
+    """A request body the server refuses with HTTP 400."""
+
+    def __init__(self, message: str, param: str | None = None, code: str | None = None) -> None:
+        super().__init__(message)
+        self.message = message
+        self.param = param
+        self.code = code
+
+
+@dataclass(frozen=True, slots=True)
+class GenerationRequest:
+    """What the engine needs from a chat or text completion request."""
+
+    prompt: str
+    max_tokens: int | None
+    stream: bool
+    include_usage: bool
+
+
+def error_body(message: str, *, type_: str, param: str | None, code: str | None) -> bytes:
+    return jsoncodec.dumps(
+        {"error": {"message": message, "type": type_, "param": param, "code": code}}
+    )
+
+
+def parse_chat_request(document: Any) -> GenerationRequest:
+    """Validate a chat completions body; the prompt is all message texts, space-joined."""
+    if not isinstance(document, dict):
+        raise InvalidRequest("request body must be a JSON object")
+    messages = document.get("messages")
+    if not isinstance(messages, list) or not messages:
+        raise InvalidRequest("'messages' must be a non-empty list of messages", "messages")
+    texts: list[str] = []
+    for position, message in enumerate(messages):
+        if not isinstance(message, dict) or not isinstance(message.get("role"), str):
+            raise InvalidRequest(
+                f"messages[{position}] must be an object with a string 'role'", "messages"
+            )
+        texts.extend(_message_texts(message.get("content"), position))
+    return _common_fields(document, " ".join(texts))
+
+
+def parse_completion_request(document: Any) -> GenerationRequest:
+    """Validate a text completions body; a list prompt is joined into one prompt."""
+    if not isinstance(document, dict):
+        raise InvalidRequest("request body must be a JSON object")
+    prompt = document.get("prompt")
+    if isinstance(prompt, list) and prompt and all(isinstance(p, str) for p in prompt):
+        prompt = " ".join(prompt)
+    if not isinstance(prompt, str):
+        raise InvalidRequest("'prompt' must be a string or a non-empty list of strings", "prompt")
+    return _common_fields(document, prompt)
+
+
+def _message_texts(content: Any, position: int) -> list[str]:
+    if content is None:
+        return []
+    if isinstance(content, str):
+        return [content]
+    if isinstance(content, list):
+        texts = []
+        for part in content:
+            if not isinstance(part, dict) or not isinstance(part.get("type"), str):
+                raise InvalidRequest(
+                    f"messages[{position}].content parts must be objects with a 'type'",
+                    "messages",
+                )
+            if part["type"] == "text":
+                if not isinstance(part.get("text"), str):
+                    raise InvalidRequest(
+                        f"messages[{position}] has a text part without a string 'text'",
+                        "messages",
+                    )
+                texts.append(part["text"])
+        return texts
+    raise InvalidRequest(
+        f"messages[{position}].content must be a string, a list of parts or null", "messages"
+    )
+
+
+def _common_fields(document: dict[str, Any], prompt: str) -> GenerationRequest:
+    model = document.get("model")
+    if model is not None and not isinstance(model, str):
+        raise InvalidRequest("'model' must be a string", "model")
+    param = "max_completion_tokens"
+    max_tokens = document.get(param)
+    if max_tokens is None:
+        param = "max_tokens"
+        max_tokens = document.get(param)
+    if max_tokens is not None and (
+        isinstance(max_tokens, bool) or not isinstance(max_tokens, int) or max_tokens < 1
+    ):
+        raise InvalidRequest(f"'{param}' must be an integer >= 1", param, "invalid_value")
+    stream = document.get("stream", False)
+    if stream is None:
+        stream = False
+    if not isinstance(stream, bool):
+        raise InvalidRequest("'stream' must be a boolean", "stream")
+    options = document.get("stream_options")
+    include_usage = False
+    if options is not None:
+        if not isinstance(options, dict):
+            raise InvalidRequest("'stream_options' must be an object", "stream_options")
+        include_usage = options.get("include_usage", False) is True
+    return GenerationRequest(prompt, max_tokens, stream, include_usage)
+
+
+class _StreamReply:
+    """Feeds one streamed answer: one chunk per token, the tail in one final write."""
+
+    __slots__ = (
+        "_finish_body",
+        "_head",
+        "_responder",
+        "_usage_body",
+        "_word_bodies",
+        "_words",
+    )
+
+    def __init__(
+        self,
+        responder: Responder,
+        head: bytes,
+        word_bodies: tuple[bytes, ...],
+        words: list[int],
+        finish_body: bytes,
+        usage_body: bytes | None,
+    ) -> None:
+        self._responder = responder
+        self._head = head
+        self._word_bodies = word_bodies
+        self._words = words
+        self._finish_body = finish_body
+        self._usage_body = usage_body
+
+    def on_token(self, sequence: Sequence) -> None:
+        emitted = sequence.emitted
+        ns_tail = b"%d}\n\n" % time.perf_counter_ns()
+        head = self._head
+        content = head + self._word_bodies[self._words[emitted - 1]] + ns_tail
+        if emitted < sequence.output_tokens:
+            self._responder.write_chunk(content)
+            return
+        parts = [content, head, self._finish_body, ns_tail]
+        if self._usage_body is not None:
+            parts += (head, self._usage_body, ns_tail)
+        parts.append(_DONE)
+        self._responder.end_stream(b"".join(parts))
+
+
+class _BufferedReply:
+    """Answers a non-streaming request once its sequence has its last token."""
+
+    __slots__ = ("_build", "_responder")
+
+    def __init__(self, responder: Responder, build: Callable[[], bytes]) -> None:
+        self._responder = responder
+        self._build = build
+
+    def on_token(self, sequence: Sequence) -> None:
+        if sequence.finished:
+            self._responder.send(200, self._build())
+
+
+class MockApp:
+    """The request handler: routes each request and answers it (see module docstring)."""
+
+    def __init__(self, engine: Engine) -> None:
+        self.engine = engine
+        self.config = engine.config
+        self.counters = HttpCounters()
+        self._created = int(time.time())
+        self._ids = itertools.count(1)
+        self._model_json = jsoncodec.dumps(self.config.model)
+        self._routes: dict[str, dict[str, Callable[[Request, Responder], None]]] = {
+            "/v1/chat/completions": {"POST": self._chat_completions},
+            "/v1/completions": {"POST": self._completions},
+            "/v1/models": {"GET": self._models},
+            "/health": {"GET": self._health},
+            "/mock/stats": {"GET": self._stats},
+        }
+
+    def __call__(self, request: Request, responder: Responder) -> None:
+        methods = self._routes.get(request.path)
+        if methods is None:
+            message = f"no route for {request.path}"
+            responder.send(404, error_body(message, type_="invalid_request_error", param=None, code=None))
+            return
+        handler = methods.get(request.method)
+        if handler is None:
+            allowed = ", ".join(sorted(methods))
+            message = f"method {request.method} is not allowed on {request.path}; use {allowed}"
+            responder.send(
+                405,
+                error_body(message, type_="invalid_request_error", param=None, code=None),
+                headers=(("allow", allowed),),
+            )
+            return
+        handler(request, responder)
+
+    # generation routes
+
+    def _chat_completions(self, request: Request, responder: Responder) -> None:
+        self._generate(request, responder, chat=True)
+
+    def _completions(self, request: Request, responder: Responder) -> None:
+        self._generate(request, responder, chat=False)
+
+    def _generate(self, request: Request, responder: Responder, *, chat: bool) -> None:
+        self.counters.requests_received += 1
+        config = self.config
+        try:
+            try:
+                document = jsoncodec.loads(request.body)
+            except ValueError as exc:
+                raise InvalidRequest("request body is not valid JSON") from exc
+            parsed = parse_chat_request(document) if chat else parse_completion_request(document)
+        except InvalidRequest as exc:
+            self.counters.requests_invalid += 1
+            responder.send(
+                400,
+                error_body(exc.message, type_="invalid_request_error", param=exc.param, code=exc.code),
+            )
+            return
+        prompt_tokens = count_tokens(parsed.prompt, config.tokens_per_word)
+        if parsed.max_tokens is not None:
+            output_tokens, finish_reason = parsed.max_tokens, "length"
+        else:
+            # Like a real server: the default answer stops at the end of the context window.
+            room = config.context_window - prompt_tokens
+            output_tokens = min(config.default_max_tokens, room) if room >= 1 else config.default_max_tokens
+            finish_reason = "stop" if output_tokens == config.default_max_tokens else "length"
+        words = choose_word_indices(config.seed, parsed.prompt, parsed.max_tokens, output_tokens)
+        request_id = f"{'chatcmpl' if chat else 'cmpl'}-mock{next(self._ids):010d}"
+        created = int(time.time())
+        usage = {
+            "prompt_tokens": prompt_tokens,
+            "completion_tokens": output_tokens,
+            "total_tokens": prompt_tokens + output_tokens,
+        }
+        reply: _StreamReply | _BufferedReply
+        role_chunk_prefix = b""
+        if parsed.stream:
+            head = b'data: {"id":"%b","object":"%b","created":%d,"model":%b,"choices":[' % (
+                request_id.encode(),
+                (_CHAT_CHUNK_OBJECT if chat else _COMPLETION_OBJECT).encode(),
+                created,
+                self._model_json,
+            )
+            if chat:
+                role_chunk_prefix = head + _CHAT_ROLE_BODY
+            finish_bodies = _CHAT_FINISH_BODIES if chat else _COMPLETION_FINISH_BODIES
+            usage_body = (
+                b'],"usage":%b,"mock_sent_ns":' % jsoncodec.dumps(usage)
+                if parsed.include_usage
+                else None
+            )
+            reply = _StreamReply(
+                responder,
+                head,
+                _CHAT_WORD_BODIES if chat else _COMPLETION_WORD_BODIES,
+                words,
+                finish_bodies[finish_reason],
+                usage_body,
+            )
+        else:
+
+            def build_body() -> bytes:
+                text = "".join(VOCABULARY[index] + " " for index in words)
+                choice: dict[str, Any] = (
+                    {
+                        "index": 0,
+                        "message": {"role": "assistant", "content": text},
+                        "finish_reason": finish_reason,
+                    }
+                    if chat
+                    else {"index": 0, "text": text, "finish_reason": finish_reason, "logprobs": None}
+                )
+                return jsoncodec.dumps(
+                    {
+                        "id": request_id,
+                        "object": "chat.completion" if chat else _COMPLETION_OBJECT,
+                        "created": created,
+                        "model": config.model,
+                        "choices": [choice],
+                        "usage": usage,
+                    }
+                )
+
+            reply = _BufferedReply(responder, build_body)
+        try:
+            sequence = self.engine.submit(prompt_tokens, output_tokens, reply.on_token)
+        except AdmissionRejected as exc:
+            responder.send(
+                400,
+                error_body(exc.message, type_="invalid_request_error", param=exc.param, code=exc.code),
+            )
+            return
+        responder.on_abort = lambda: self.engine.cancel(sequence)
+        if parsed.stream:
+            # The role chunk goes out at once: the response starts when the request is queued.
+            first_chunk = (
+                role_chunk_prefix + b"%d}\n\n" % time.perf_counter_ns() if chat else b""
+            )
+            responder.start_stream(first_chunk=first_chunk)
+
+    # other routes
+
+    def _models(self, request: Request, responder: Responder) -> None:
+        body = {
+            "object": "list",
+            "data": [
+                {
+                    "id": self.config.model,
+                    "object": "model",
+                    "created": self._created,
+                    "owned_by": "mock_server",
+                }
+            ],
+        }
+        responder.send(200, jsoncodec.dumps(body))
+
+    def _health(self, request: Request, responder: Responder) -> None:
+        responder.send(200, b'{"status":"ok"}')
+
+    def _stats(self, request: Request, responder: Responder) -> None:
+        engine = self.engine
+        document = stats_document(
+            http=self.counters,
+            engine_counters=engine.counters,
+            queue_length=engine.queue_length,
+            running=engine.running_count,
+            pacing_error_us=engine.pacing_error_us,
+            delivery_pass_us=engine.delivery_pass_us,
+            engine_config=self.config.as_dict(),
+        )
+        responder.send(200, jsoncodec.dumps(document))
