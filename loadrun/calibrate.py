@@ -13,7 +13,7 @@ from typing import Any
 import anyio
 
 from loadrun.profile import LoadSpec, Profile, RequestSpec
-from loadrun.runner import MeasureSettings, event_loop_options, embedded_mock, measure_async
+from loadrun.runner import MeasureSettings, embedded_mock, event_loop_options, measure_async
 
 CALIBRATION_ENGINE = "wide"
 """Mock preset whose step time does not grow with the batch: every stream gets 50 tokens/s."""

@@ -11,12 +11,21 @@ CAUTION = (
 )
 
 
-def plan_text(target: Target, *, requests: int | None, duration_s: float | None, concurrency: int,
-              input_tokens: int, output_tokens: int) -> str:
+def plan_text(
+    target: Target,
+    *,
+    requests: int | None,
+    duration_s: float | None,
+    concurrency: int,
+    input_tokens: int,
+    output_tokens: int,
+) -> str:
     """What is about to be sent, in words, for the confirmation prompt."""
     if requests is not None:
         volume = f"{requests} requests"
-        tokens = f"about {requests * input_tokens:,} input and up to {requests * output_tokens:,} output tokens"
+        tokens = (
+            f"about {requests * input_tokens:,} input and up to {requests * output_tokens:,} output tokens"
+        )
     else:
         volume = f"requests for {duration_s:g} s"
         tokens = f"{input_tokens} input and up to {output_tokens} output tokens per request"

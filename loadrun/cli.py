@@ -6,7 +6,6 @@ import sys
 from pathlib import Path
 from typing import Annotated, Any, NoReturn
 
-import click
 import typer
 
 from loadrun import jsonfast
@@ -21,7 +20,7 @@ from loadrun.transports import TRANSPORT_NAMES
 
 app = typer.Typer(
     add_completion=False,
-    no_args_is_help=True,
+    pretty_exceptions_enable=False,
     help="Benchmark and load-test chat-completions endpoints. With no --base-url, "
     "commands run against the bundled mock server on a free loopback port.",
 )
@@ -29,28 +28,56 @@ app = typer.Typer(
 
 @app.command("measure")
 def measure_command(
-    profile_path: Annotated[Path | None, typer.Argument(metavar="[PROFILE]", help="Profile TOML; default: a short chat.")] = None,
+    profile_path: Annotated[
+        Path | None, typer.Argument(metavar="[PROFILE]", help="Profile TOML; default: a short chat.")
+    ] = None,
     base_url: Annotated[str | None, typer.Option(help="API base URL, e.g. http://127.0.0.1:8000/v1.")] = None,
     model: Annotated[str | None, typer.Option(help="Model name to request.")] = None,
-    api_key_env: Annotated[str | None, typer.Option(help="NAME of the environment variable holding the API key.")] = None,
-    header: Annotated[list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")] = None,
-    concurrency: Annotated[int | None, typer.Option("--concurrency", "-c", min=1, help="Requests in flight.")] = None,
-    requests: Annotated[int | None, typer.Option("--requests", "-n", min=1, help="Measured requests.")] = None,
-    duration: Annotated[float | None, typer.Option("--duration", "-d", min=0.1, help="Measured seconds.")] = None,
-    warmup: Annotated[float | None, typer.Option(min=0.0, help="Warm-up seconds, kept out of the measurement.")] = None,
-    input_tokens: Annotated[int | None, typer.Option(min=1, help="Override the profile's input length.")] = None,
-    output_tokens: Annotated[int | None, typer.Option(min=1, help="Override the profile's max_tokens.")] = None,
-    slo: Annotated[list[str] | None, typer.Option(help="Per-request SLO for goodput, METRIC=MS (ttft, tpot, itl, e2e).")] = None,
+    api_key_env: Annotated[
+        str | None, typer.Option(help="NAME of the environment variable holding the API key.")
+    ] = None,
+    header: Annotated[
+        list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")
+    ] = None,
+    concurrency: Annotated[
+        int | None, typer.Option("--concurrency", "-c", min=1, help="Requests in flight.")
+    ] = None,
+    requests: Annotated[
+        int | None, typer.Option("--requests", "-n", min=1, help="Measured requests.")
+    ] = None,
+    duration: Annotated[
+        float | None, typer.Option("--duration", "-d", min=0.1, help="Measured seconds.")
+    ] = None,
+    warmup: Annotated[
+        float | None, typer.Option(min=0.0, help="Warm-up seconds, kept out of the measurement.")
+    ] = None,
+    input_tokens: Annotated[
+        int | None, typer.Option(min=1, help="Override the profile's input length.")
+    ] = None,
+    output_tokens: Annotated[
+        int | None, typer.Option(min=1, help="Override the profile's max_tokens.")
+    ] = None,
+    slo: Annotated[
+        list[str] | None, typer.Option(help="Per-request SLO for goodput, METRIC=MS (ttft, tpot, itl, e2e).")
+    ] = None,
     json_output: Annotated[bool, typer.Option("--json", help="Print the summary as JSON on stdout.")] = False,
     out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
     no_save: Annotated[bool, typer.Option("--no-save", help="Write no run folder.")] = False,
     transport: Annotated[str, typer.Option(help=f"Transport: {' or '.join(TRANSPORT_NAMES)}.")] = "fast",
-    mock_engine: Annotated[str, typer.Option(help="Engine preset or TOML of the bundled mock.")] = DEFAULT_MOCK_ENGINE,
+    mock_engine: Annotated[
+        str, typer.Option(help="Engine preset or TOML of the bundled mock.")
+    ] = DEFAULT_MOCK_ENGINE,
     timeout: Annotated[float, typer.Option(min=0.001, help="Seconds a whole request may take.")] = 600.0,
     connect_timeout: Annotated[float, typer.Option(min=0.001, help="Seconds to open a connection.")] = 10.0,
-    time_limit: Annotated[float, typer.Option(min=1.0, help="Hard bound on the whole run, seconds.")] = 3600.0,
-    insecure_skip_tls_verify: Annotated[bool, typer.Option("--insecure-skip-tls-verify", help="Turn TLS certificate checks off.")] = False,
-    yes: Annotated[bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")] = False,
+    time_limit: Annotated[
+        float, typer.Option(min=1.0, help="Hard bound on the whole run, seconds.")
+    ] = 3600.0,
+    insecure_skip_tls_verify: Annotated[
+        bool, typer.Option("--insecure-skip-tls-verify", help="Turn TLS certificate checks off.")
+    ] = False,
+    yes: Annotated[
+        bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")
+    ] = False,
 ) -> None:
     """Measure one profile at one concurrency and print the summary."""
     profile = load_profile(profile_path) if profile_path else Profile()
@@ -92,7 +119,9 @@ def measure_command(
         _confirm(target, settings)
         settings = _replace_confirmed(settings)
     if target is None:
-        say(f"No --base-url given: starting the bundled mock server (engine {mock_engine}) on a free loopback port.")
+        say(
+            f"No --base-url given: starting the bundled mock server (engine {mock_engine}) on a loopback port."
+        )
     result = measure(settings)
     if json_output:
         sys.stdout.write(jsonfast.dumps(result.summary).decode() + "\n")
@@ -114,7 +143,9 @@ def calibrate_command(
 
     levels = tuple(level for level in DEFAULT_LEVELS if level <= max_streams) or (max_streams,)
     say("Starting the bundled mock server (engine wide) on a free loopback port.")
-    rows, verdict = calibrate(CalibrationSettings(levels=levels, seconds_per_level=seconds, limit_ms=limit_ms, transport=transport))
+    rows, verdict = calibrate(
+        CalibrationSettings(levels=levels, seconds_per_level=seconds, limit_ms=limit_ms, transport=transport)
+    )
     render_calibration(rows, verdict)
 
 
@@ -130,7 +161,9 @@ def mock_command(
     raise typer.Exit(mock_main(["--host", host, "--port", str(port), "--engine", engine]))
 
 
-def _target(base_url: str | None, model: str | None, api_key_env: str | None, headers: list[str], insecure: bool) -> Target | None:
+def _target(
+    base_url: str | None, model: str | None, api_key_env: str | None, headers: list[str], insecure: bool
+) -> Target | None:
     if base_url is None:
         if model or api_key_env or headers:
             raise UsageError("--model, --api-key-env and --header need --base-url")
@@ -143,8 +176,14 @@ def _target(base_url: str | None, model: str | None, api_key_env: str | None, he
         if not sep or not name.strip():
             raise UsageError(f"header {text!r}: write 'Name: value'")
         pairs.append((name.strip(), value.strip()))
-    target = Target(base_url=base_url, model=model, api_key_env=api_key_env, name=model,
-                    headers=tuple(pairs), verify_tls=not insecure)
+    target = Target(
+        base_url=base_url,
+        model=model,
+        api_key_env=api_key_env,
+        name=model,
+        headers=tuple(pairs),
+        verify_tls=not insecure,
+    )
     if target.endpoint.scheme == "http" and api_key_env and not target.is_loopback:
         raise UsageError("refusing to send an API key over plain http to a host that is not this machine")
     target.api_key()  # fail now, not mid-run, when the named variable is unset
@@ -181,17 +220,16 @@ def _fail(kind: str, message: str, code: int) -> NoReturn:
 
 def main(argv: list[str] | None = None) -> Any:
     """Entry point: errors are handled once, here; a user's mistake never shows a traceback."""
+    args = sys.argv[1:] if argv is None else argv
     try:
-        return app(args=argv, standalone_mode=False)
+        return app(args=args or ["--help"], standalone_mode=False)
     except LoadrunError as exc:
         _fail(type(exc).__name__, str(exc), exc.exit_code)
-    except click.exceptions.Abort:
+    except (typer.Abort, KeyboardInterrupt):
         _fail("Interrupted", "stopped by the user", 130)
-    except KeyboardInterrupt:
-        _fail("Interrupted", "stopped by the user", 130)
-    except click.exceptions.ClickException as exc:
-        _fail("UsageError", exc.format_message(), 2)
-    except click.exceptions.Exit as exc:
+    except typer.TyperException as exc:  # the command line itself was wrong
+        _fail("UsageError", " ".join(exc.format_message().split()), 2)
+    except typer.Exit as exc:
         raise SystemExit(exc.exit_code) from None
 
 

@@ -164,7 +164,9 @@ class _ResponseReader:
 class ChatClient:
     """Sends chat-completions requests to one target through one transport."""
 
-    def __init__(self, target: Target, transport: Transport, *, total_timeout_s: float | None = 600.0) -> None:
+    def __init__(
+        self, target: Target, transport: Transport, *, total_timeout_s: float | None = 600.0
+    ) -> None:
         self.target = target
         self.transport = transport
         self.total_timeout_s = total_timeout_s

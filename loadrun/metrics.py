@@ -16,7 +16,6 @@ past the ceiling, where no in-range value can land.
 from __future__ import annotations
 
 import binascii
-import sys
 import zlib
 from collections.abc import Iterable, Mapping
 from typing import Any
@@ -107,7 +106,7 @@ class LatencyHistogram:
         if value_us < self._lowest_us:
             if value_us < 0:
                 raise MeasurementError(f"negative latency {value_us} us: clock error")
-            return
+            value_us = self._lowest_us
         elif value_us > self._highest_us:
             value_us = self._overflow_marker_us
         if count < 1:
@@ -157,53 +156,61 @@ class LatencyHistogram:
         return int(self._hist.get_count_at_value(self._overflow_marker_us))
 
     @property
-    def mean_us(self) -> float | None:
-        if not self.count:
-            return None
+    def mean_us(self) -> float:
+        """Mean of the recorded samples (bucket midpoints); ValueError when empty."""
+        self._require_samples()
         return float(self._hist.get_mean_value())
 
     @property
-    def min_us(self) -> int | None:
-        if not self.count:
-            return None
+    def min_us(self) -> int:
+        """Smallest recorded value (bottom of its bucket); ValueError when empty."""
+        self._require_samples()
         return int(self._hist.get_min_value())
 
     @property
-    def max_us(self) -> int | None:
-        if not self.count:
-            return None
+    def max_us(self) -> int:
+        """Largest recorded value (top of its bucket); ValueError when empty."""
+        self._require_samples()
         return int(self._hist.get_max_value())
 
-    def percentile_us(self, percentile: float) -> int | None:
+    def percentile_us(self, percentile: float) -> int:
         """Value at ``percentile`` (0..100): the top of the bucket holding that rank.
 
         The rank is ``round(percentile / 100 * count)`` (at least 1), HdrHistogram's rule.
+        ValueError when empty: there is no value to report, and 0 would read as a latency.
         """
         _check_percentile(percentile)
-        if not self.count:
-            return None
+        self._require_samples()
         return int(self._hist.get_value_at_percentile(percentile))
 
-    def percentiles_us(self, percentiles: Iterable[float]) -> dict[float, int | None]:
-        """Several percentiles in one pass over the counts."""
+    def percentiles_us(self, percentiles: Iterable[float]) -> dict[float, int]:
+        """Several percentiles in one pass over the counts; ValueError when empty."""
         wanted = list(percentiles)
         for percentile in wanted:
             _check_percentile(percentile)
-        if not self.count:
-            return dict.fromkeys(wanted)
+        self._require_samples()
         values = self._hist.get_percentile_to_value_dict(wanted)
         return {percentile: int(values[percentile]) for percentile in wanted}
 
     def summary(self) -> dict[str, float | int | None]:
         """Count, then mean, min, max and :data:`PERCENTILES` in milliseconds (None if empty)."""
-        result: dict[str, float | int | None] = {"count": self.count}
-        for key, value_us in (("mean_ms", self.mean_us), ("min_ms", self.min_us)):
-            result[key] = None if value_us is None else value_us / _US_PER_MS
-        max_us = self.max_us
-        result["max_ms"] = None if max_us is None else max_us / _US_PER_MS
-        for percentile, value in self.percentiles_us(PERCENTILES).items():
-            result[_percentile_key(percentile)] = None if value is None else value / _US_PER_MS
-        return result
+        summary: dict[str, float | int | None] = {"count": self.count}
+        keys = ["mean_ms", "min_ms", "max_ms", *map(_percentile_key, PERCENTILES)]
+        if not self.count:
+            return summary | dict.fromkeys(keys)
+        values_us = [
+            self.mean_us,
+            self.min_us,
+            self.max_us,
+            *self.percentiles_us(PERCENTILES).values(),
+        ]
+        for key, value_us in zip(keys, values_us, strict=True):
+            summary[key] = value_us / _US_PER_MS
+        return summary
+
+    def _require_samples(self) -> None:
+        if not self._hist.get_total_count():
+            raise ValueError("the histogram is empty")
 
     # --- combining and storing ----------------------------------------------------------
 
@@ -214,9 +221,7 @@ class LatencyHistogram:
         if not other.count:
             # hdrh's add() would take the empty histogram's minimum (0) as the new minimum.
             return
-        own_min = self._hist.min_value if self.count else sys.maxsize
         self._hist.add(other._hist)
-        self._hist.min_value = min(own_min, other._hist.min_value)
 
     def encode(self) -> str:
         """The portable HdrHistogram form (compressed, base64)."""
@@ -292,17 +297,14 @@ class HistogramSet:
     def decode(cls, encoded: Mapping[str, str]) -> HistogramSet:
         """Rebuild a set from :meth:`encode`'s output, keeping its metric order."""
         decoded = cls.__new__(cls)
-        decoded._histograms = {
-            name: LatencyHistogram.decode(text) for name, text in encoded.items()
-        }
+        decoded._histograms = {name: LatencyHistogram.decode(text) for name, text in encoded.items()}
         return decoded
 
     def merge(self, other: HistogramSet) -> None:
         """Add every sample of ``other``; both sets must hold the same metrics."""
         if set(other._histograms) != set(self._histograms):
             raise ValueError(
-                f"cannot merge metrics {sorted(other._histograms)} "
-                f"into {sorted(self._histograms)}"
+                f"cannot merge metrics {sorted(other._histograms)} into {sorted(self._histograms)}"
             )
         for name, hist in self._histograms.items():
             hist.merge(other._histograms[name])

@@ -1,18 +1,18 @@
 """Profile: what to send. Loaded from TOML, validated strictly (unknown keys are errors).
 
-    name = "harbour-desk-chat"
-    seed = 1
-    [request]
-    system_prompt = "..."
-    input_tokens = 128      # words of synthesized user text (one word ~ one token)
-    output_tokens = 64      # max_tokens
-    stream = true
-    [request.sampling]      # passed through as they are
-    temperature = 0.2
-    [load]
-    concurrency = 8
-    duration_s = 10.0       # or: requests = 200
-    warmup_s = 1.0
+name = "harbour-desk-chat"
+seed = 1
+[request]
+system_prompt = "..."
+input_tokens = 128      # words of synthesized user text (one word ~ one token)
+output_tokens = 64      # max_tokens
+stream = true
+[request.sampling]      # passed through as they are
+temperature = 0.2
+[load]
+concurrency = 8
+duration_s = 10.0       # or: requests = 200
+warmup_s = 1.0
 """
 
 from __future__ import annotations
@@ -109,7 +109,9 @@ def profile_from_dict(raw: Mapping[str, Any], source: str = "<profile>") -> Prof
     reader.only(raw, "", {"name", "seed", "request", "load", "description"})
     request_raw = reader.table(raw, "request")
     load_raw = reader.table(raw, "load")
-    reader.only(request_raw, "request.", {"input_tokens", "output_tokens", "stream", "system_prompt", "sampling"})
+    reader.only(
+        request_raw, "request.", {"input_tokens", "output_tokens", "stream", "system_prompt", "sampling"}
+    )
     reader.only(load_raw, "load.", {"concurrency", "duration_s", "requests", "warmup_s"})
     sampling = reader.table(request_raw, "sampling", "request.")
     for key, value in sampling.items():
@@ -117,7 +119,9 @@ def profile_from_dict(raw: Mapping[str, Any], source: str = "<profile>") -> Prof
             reader.fail(f"request.sampling.{key}", "must be a number, string, boolean or list")
     defaults = LoadSpec()
     requests = reader.integer(load_raw, "load.requests", None, minimum=1)
-    duration = reader.number(load_raw, "load.duration_s", None if requests else defaults.duration_s, minimum=0.1)
+    duration = reader.number(
+        load_raw, "load.duration_s", None if requests else defaults.duration_s, minimum=0.1
+    )
     return Profile(
         name=reader.string(raw, "name", Path(source).stem if source != "<profile>" else "profile"),
         seed=reader.integer(raw, "seed", 1) or 1,
@@ -161,7 +165,9 @@ class _Reader:
     def _get(self, table: Mapping[str, Any], path: str) -> Any:
         return table.get(path.rsplit(".", 1)[-1])
 
-    def integer(self, table: Mapping[str, Any], path: str, default: int | None, minimum: int | None = None) -> int | None:
+    def integer(
+        self, table: Mapping[str, Any], path: str, default: int | None, minimum: int | None = None
+    ) -> int | None:
         value = self._get(table, path)
         if value is None:
             return default
@@ -171,7 +177,9 @@ class _Reader:
             self.fail(path, f"must be at least {minimum}, got {value}")
         return int(value)
 
-    def number(self, table: Mapping[str, Any], path: str, default: float | None, minimum: float | None = None) -> float | None:
+    def number(
+        self, table: Mapping[str, Any], path: str, default: float | None, minimum: float | None = None
+    ) -> float | None:
         value = self._get(table, path)
         if value is None:
             return default

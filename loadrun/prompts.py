@@ -11,8 +11,26 @@ import random
 
 # Made-up syllables; words built from them belong to no language.
 _SYLLABLES = (
-    "ka", "lo", "mi", "ter", "van", "su", "rel", "dox", "pa", "quin",
-    "bo", "zef", "ni", "ulm", "ra", "tesh", "go", "vy", "lan", "mur",
+    "ka",
+    "lo",
+    "mi",
+    "ter",
+    "van",
+    "su",
+    "rel",
+    "dox",
+    "pa",
+    "quin",
+    "bo",
+    "zef",
+    "ni",
+    "ulm",
+    "ra",
+    "tesh",
+    "go",
+    "vy",
+    "lan",
+    "mur",
 )
 
 

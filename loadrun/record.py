@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import enum
 from dataclasses import dataclass, field
+from itertools import pairwise
 from typing import Any
 
 
@@ -87,7 +88,7 @@ class Record:
 
     def itl_ns(self) -> list[int]:
         times = self.chunk_ns
-        return [b - a for a, b in zip(times, times[1:], strict=False)]
+        return [b - a for a, b in pairwise(times)]
 
     @property
     def tpot_ns(self) -> int | None:

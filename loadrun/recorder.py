@@ -53,9 +53,9 @@ class Recorder:
         self.token_sources: Counter[str] = Counter()
         self.errors: Counter[str] = Counter()
         self.windows: dict[int, _Window] = {}
-        self._measured: list[Record] = []
-        """In-window records reduced to what the throughput window needs (end, tokens, slo)."""
         self._ends: list[tuple[int, int, int, bool, bool]] = []
+        """Every completion as (end, output tokens, input tokens, ok, met all SLOs)."""
+        self.output_tokens_measured = 0
         self.input_tokens_total = 0
         self.input_tokens_reported = 0
 
@@ -72,8 +72,15 @@ class Recorder:
             self._absorb_one(record)
 
     def _absorb_one(self, record: Record) -> None:
+        ok = record.outcome is Outcome.OK
+        met = ok and all(slo.met_by(record) for slo in self.slos)
         if not record.in_window:
+            # Sent during warm-up: no latency sample, but a completion inside the window
+            # is still work the target did in the window and counts for throughput.
             self.warmup_outcomes[record.outcome.value] += 1
+            self._ends.append(
+                (record.end_ns, record.output_tokens if ok else 0, record.prompt_tokens or 0, ok, met)
+            )
             return
         self.outcomes[record.outcome.value] += 1
         for error_us in record.receive_error_us:
@@ -81,9 +88,9 @@ class Recorder:
         self.send_lag.record_us(record.send_lag_ns // NS_PER_US)
         window = self.windows.setdefault(max(0, (record.end_ns - self.origin_ns) // NS_PER_S), _Window())
         window.completed += 1
-        ok = record.outcome is Outcome.OK
-        met = ok and all(slo.met_by(record) for slo in self.slos)
-        self._ends.append((record.end_ns, record.output_tokens if ok else 0, record.prompt_tokens or 0, ok, met))
+        self._ends.append(
+            (record.end_ns, record.output_tokens if ok else 0, record.prompt_tokens or 0, ok, met)
+        )
         if not ok:
             window.failed += 1
             if record.error:
@@ -91,6 +98,7 @@ class Recorder:
             return
         window.ok += 1
         window.output_tokens += record.output_tokens
+        self.output_tokens_measured += record.output_tokens
         self.token_sources[record.token_source.value] += 1
         if record.prompt_tokens is not None:
             self.input_tokens_total += record.prompt_tokens
@@ -142,10 +150,12 @@ class Recorder:
             },
             "latency": self.histograms.summary(),
             "tokens": {
-                "output_mean": self._mean_output_tokens(),
+                "output_mean": self.output_tokens_measured / ok_total if ok_total else None,
                 "sources": dict(sorted(self.token_sources.items())),
                 "input_mean_reported": (
-                    self.input_tokens_total / self.input_tokens_reported if self.input_tokens_reported else None
+                    self.input_tokens_total / self.input_tokens_reported
+                    if self.input_tokens_reported
+                    else None
                 ),
             },
             "windows": self._windows_json(),
@@ -159,10 +169,6 @@ class Recorder:
                 "share_of_completed": met / len(done_in_window) if done_in_window else None,
             }
         return summary
-
-    def _mean_output_tokens(self) -> float | None:
-        oks = [e[1] for e in self._ends if e[3]]
-        return sum(oks) / len(oks) if oks else None
 
     def _windows_json(self) -> list[dict[str, Any]]:
         rows = []

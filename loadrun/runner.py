@@ -131,7 +131,7 @@ async def _run_level(
         assert recorder is not None
         recorder.add(record)
         breaker.see(record)
-        if len(recorder._pending) >= ABSORB_EVERY:  # noqa: SLF001 - bulk fill, off the read path
+        if len(recorder._pending) >= ABSORB_EVERY:
             recorder.absorb()
 
     try:
@@ -141,7 +141,9 @@ async def _run_level(
             if folder is not None:
                 folder.open_records(origin)
             recorder = Recorder(origin, slos=settings.slos, sink=folder.write_record if folder else None)
-            level = await run_closed_loop(plan, client.execute, settings.profile.requests(), on_record, stop=stop)
+            level = await run_closed_loop(
+                plan, client.execute, settings.profile.requests(), on_record, stop=stop
+            )
             monitor_stop.set()
     finally:
         await transport.aclose()
@@ -241,9 +243,13 @@ async def _check_reachable(target: Target, timeout_s: float) -> None:
             stream = await anyio.connect_tcp(endpoint.host, endpoint.port)
             await stream.aclose()
     except TimeoutError as exc:
-        raise TargetUnreachable(f"{endpoint.host}:{endpoint.port} did not accept a connection within {timeout_s:g} s") from exc
+        raise TargetUnreachable(
+            f"{endpoint.host}:{endpoint.port} did not accept a connection within {timeout_s:g} s"
+        ) from exc
     except OSError as exc:
-        raise TargetUnreachable(f"cannot connect to {endpoint.host}:{endpoint.port}: {exc.strerror or exc}") from exc
+        raise TargetUnreachable(
+            f"cannot connect to {endpoint.host}:{endpoint.port}: {exc.strerror or exc}"
+        ) from exc
 
 
 def _plan_json(plan: ClosedLoopPlan) -> dict[str, Any]:

@@ -23,7 +23,9 @@ class Slo:
         name, sep, value = text.partition("=")
         name = name.strip().lower()
         if not sep or name not in SLO_METRICS:
-            raise UsageError(f"SLO {text!r}: write METRIC=MILLISECONDS with METRIC one of {', '.join(SLO_METRICS)}")
+            raise UsageError(
+                f"SLO {text!r}: write METRIC=MILLISECONDS with METRIC one of {', '.join(SLO_METRICS)}"
+            )
         try:
             limit = float(value.strip().removesuffix("ms"))
         except ValueError as exc:

@@ -1,0 +1,32 @@
+"""A CPU-only mock of a continuous-batching LLM inference server, over real HTTP/1.1.
+
+It speaks the chat-completions protocol (streaming and not), paces tokens by a simple
+engine model (``engine``), and knows its own analytic steady state (``ground_truth``), so
+load-testing code can be checked with no GPU and no network.
+"""
+
+from mock_server.config import ConfigError, load_config, preset_names
+from mock_server.engine import Engine, EngineConfig, GroundTruth, ground_truth
+from mock_server.launch import MockStartError, RunningMock, ServingMock, serve, start_subprocess
+from mock_server.scheduler import AdmissionRejected
+from mock_server.simulate import SimulationResult, simulate_closed_loop
+from mock_server.text import count_tokens
+
+__all__ = [
+    "AdmissionRejected",
+    "ConfigError",
+    "Engine",
+    "EngineConfig",
+    "GroundTruth",
+    "MockStartError",
+    "RunningMock",
+    "ServingMock",
+    "SimulationResult",
+    "count_tokens",
+    "ground_truth",
+    "load_config",
+    "preset_names",
+    "serve",
+    "simulate_closed_loop",
+    "start_subprocess",
+]

@@ -248,7 +248,9 @@ class MockApp:
         methods = self._routes.get(request.path)
         if methods is None:
             message = f"no route for {request.path}"
-            responder.send(404, error_body(message, type_="invalid_request_error", param=None, code=None))
+            responder.send(
+                404, error_body(message, type_="invalid_request_error", param=None, code=None)
+            )
             return
         handler = methods.get(request.method)
         if handler is None:
@@ -283,7 +285,9 @@ class MockApp:
             self.counters.requests_invalid += 1
             responder.send(
                 400,
-                error_body(exc.message, type_="invalid_request_error", param=exc.param, code=exc.code),
+                error_body(
+                    exc.message, type_="invalid_request_error", param=exc.param, code=exc.code
+                ),
             )
             return
         prompt_tokens = count_tokens(parsed.prompt, config.tokens_per_word)
@@ -292,7 +296,8 @@ class MockApp:
         else:
             # Like a real server: the default answer stops at the end of the context window.
             room = config.context_window - prompt_tokens
-            output_tokens = min(config.default_max_tokens, room) if room >= 1 else config.default_max_tokens
+            # (No room at all: ask for one token and let the engine reject the request.)
+            output_tokens = max(1, min(config.default_max_tokens, room))
             finish_reason = "stop" if output_tokens == config.default_max_tokens else "length"
         words = choose_word_indices(config.seed, parsed.prompt, parsed.max_tokens, output_tokens)
         request_id = f"{'chatcmpl' if chat else 'cmpl'}-mock{next(self._ids):010d}"
@@ -338,7 +343,12 @@ class MockApp:
                         "finish_reason": finish_reason,
                     }
                     if chat
-                    else {"index": 0, "text": text, "finish_reason": finish_reason, "logprobs": None}
+                    else {
+                        "index": 0,
+                        "text": text,
+                        "finish_reason": finish_reason,
+                        "logprobs": None,
+                    }
                 )
                 return jsoncodec.dumps(
                     {
@@ -357,15 +367,15 @@ class MockApp:
         except AdmissionRejected as exc:
             responder.send(
                 400,
-                error_body(exc.message, type_="invalid_request_error", param=exc.param, code=exc.code),
+                error_body(
+                    exc.message, type_="invalid_request_error", param=exc.param, code=exc.code
+                ),
             )
             return
         responder.on_abort = lambda: self.engine.cancel(sequence)
         if parsed.stream:
             # The role chunk goes out at once: the response starts when the request is queued.
-            first_chunk = (
-                role_chunk_prefix + b"%d}\n\n" % time.perf_counter_ns() if chat else b""
-            )
+            first_chunk = role_chunk_prefix + b"%d}\n\n" % time.perf_counter_ns() if chat else b""
             responder.start_stream(first_chunk=first_chunk)
 
     # other routes

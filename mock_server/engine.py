@@ -145,9 +145,7 @@ class Engine:
         assert self._loop is not None
         self._step_duration = self._scheduler.start_step()
         self._deadline = start + self._step_duration
-        self._timer = self._loop.call_later(
-            self._deadline - time.perf_counter(), self._on_deadline
-        )
+        self._timer = self._loop.call_later(self._deadline - time.perf_counter(), self._on_deadline)
 
     def _on_deadline(self) -> None:
         assert self._loop is not None

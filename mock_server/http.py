@@ -15,6 +15,7 @@ from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
 from http import HTTPStatus
+from typing import cast
 
 import httptools
 
@@ -22,8 +23,14 @@ MAX_BODY_BYTES = 16 * 1024 * 1024
 """Larger request bodies are refused with 413: no real prompt needs more."""
 
 _LAST_CHUNK = b"0\r\n\r\n"
-_ERROR_400 = b'{"error":{"message":"malformed HTTP request","type":"invalid_request_error","param":null,"code":null}}'
-_ERROR_413 = b'{"error":{"message":"request body too large","type":"invalid_request_error","param":null,"code":null}}'
+_ERROR_400 = (
+    b'{"error":{"message":"malformed HTTP request",'
+    b'"type":"invalid_request_error","param":null,"code":null}}'
+)
+_ERROR_413 = (
+    b'{"error":{"message":"request body too large",'
+    b'"type":"invalid_request_error","param":null,"code":null}}'
+)
 
 
 def _status_line(status: int) -> bytes:
@@ -34,7 +41,9 @@ def _status_line(status: int) -> bytes:
     return f"HTTP/1.1 {status} {phrase}\r\n".encode("latin-1")
 
 
-_STATUS_LINES: dict[int, bytes] = {status.value: _status_line(status.value) for status in HTTPStatus}
+_STATUS_LINES: dict[int, bytes] = {
+    status.value: _status_line(status.value) for status in HTTPStatus
+}
 
 
 @dataclass(slots=True)
@@ -136,7 +145,9 @@ class Responder:
         status_line = _STATUS_LINES.get(status) or _status_line(status)
         lines = [f"content-type: {content_type}\r\n", framing]
         lines.extend(f"{name}: {value}\r\n" for name, value in headers)
-        lines.append("connection: keep-alive\r\n\r\n" if self._keep_alive else "connection: close\r\n\r\n")
+        lines.append(
+            "connection: keep-alive\r\n\r\n" if self._keep_alive else "connection: close\r\n\r\n"
+        )
         return status_line + "".join(lines).encode("latin-1")
 
     def _finish(self) -> None:
@@ -169,8 +180,8 @@ class HttpConnection(asyncio.Protocol):
     # asyncio.Protocol
 
     def connection_made(self, transport: asyncio.BaseTransport) -> None:
-        assert isinstance(transport, asyncio.Transport)
-        self._transport = transport
+        # uvloop's transports implement the interface without subclassing asyncio.Transport.
+        self._transport = cast(asyncio.Transport, transport)
         self._connections.add(self)
 
     def data_received(self, data: bytes) -> None:

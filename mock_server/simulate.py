@@ -59,7 +59,7 @@ def simulate_closed_loop(
     """
     if concurrency < 1 or output_tokens < 1:
         raise ValueError("concurrency and output_tokens must be >= 1")
-    if not 0 < think_s:
+    if think_s <= 0:
         raise ValueError("think_s must be > 0 so an arrival never ties with a step boundary")
     spread = (
         start_spread_s

@@ -10,7 +10,9 @@ from pathlib import Path
 import pytest
 
 
-def loadrun(*args: str, cwd: Path, env: dict[str, str] | None = None, timeout: float = 90) -> subprocess.CompletedProcess[str]:
+def loadrun(
+    *args: str, cwd: Path, env: dict[str, str] | None = None, timeout: float = 90
+) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
         [sys.executable, "-m", "loadrun", *args],
         cwd=cwd,
@@ -31,7 +33,9 @@ def assert_one_line_error(result: subprocess.CompletedProcess[str], code: int, k
 
 @pytest.mark.slow
 def test_measure_json_against_the_embedded_mock(tmp_path: Path) -> None:
-    result = loadrun("measure", "--json", "-n", "12", "-c", "2", "--warmup", "0.2", "--out", "out", cwd=tmp_path)
+    result = loadrun(
+        "measure", "--json", "-n", "12", "-c", "2", "--warmup", "0.2", "--out", "out", cwd=tmp_path
+    )
     assert result.returncode == 0, result.stderr
     assert "bundled mock server" in result.stderr
     summary = json.loads(result.stdout)
@@ -48,7 +52,9 @@ def test_measure_json_against_the_embedded_mock(tmp_path: Path) -> None:
 
 @pytest.mark.slow
 def test_measure_prints_a_readable_summary(tmp_path: Path) -> None:
-    result = loadrun("measure", "-n", "6", "-c", "2", "--warmup", "0", "--no-save", "--slo", "ttft=2000", cwd=tmp_path)
+    result = loadrun(
+        "measure", "-n", "6", "-c", "2", "--warmup", "0", "--no-save", "--slo", "ttft=2000", cwd=tmp_path
+    )
     assert result.returncode == 0, result.stderr
     for words in ("time to first token", "inter-token latency", "throughput", "goodput", "generator"):
         assert words in result.stdout
@@ -57,12 +63,14 @@ def test_measure_prints_a_readable_summary(tmp_path: Path) -> None:
 
 def test_unreachable_endpoint_is_one_line_and_non_zero(tmp_path: Path) -> None:
     # Port 1 on loopback: nothing listens there, so the connection is refused at once.
-    result = loadrun("measure", "--base-url", "http://127.0.0.1:1/v1", "--model", "m", "-n", "3", cwd=tmp_path)
+    result = loadrun(
+        "measure", "--base-url", "http://127.0.0.1:1/v1", "--model", "m", "-n", "3", cwd=tmp_path
+    )
     assert_one_line_error(result, 1, "TargetUnreachable")
 
 
 def test_malformed_profile_names_file_and_key(tmp_path: Path) -> None:
-    (tmp_path / "bad.toml").write_text('[request]\ninput_tokens = 10\noutput_tokns = 5\n')
+    (tmp_path / "bad.toml").write_text("[request]\ninput_tokens = 10\noutput_tokns = 5\n")
     result = loadrun("measure", "bad.toml", cwd=tmp_path)
     assert_one_line_error(result, 2, "ProfileError")
     assert "bad.toml" in result.stderr and "request.output_tokns" in result.stderr
@@ -100,8 +108,16 @@ def test_remote_target_needs_confirmation_and_nothing_is_sent(tmp_path: Path) ->
 def test_key_over_plain_http_to_a_remote_host_is_refused(tmp_path: Path) -> None:
     env = {**__import__("os").environ, "LOADRUN_TEST_KEY": "sk-sentinel"}
     result = loadrun(
-        "measure", "--base-url", "http://192.0.2.10/v1", "--model", "m", "--api-key-env", "LOADRUN_TEST_KEY", "--yes",
-        cwd=tmp_path, env=env,
+        "measure",
+        "--base-url",
+        "http://192.0.2.10/v1",
+        "--model",
+        "m",
+        "--api-key-env",
+        "LOADRUN_TEST_KEY",
+        "--yes",
+        cwd=tmp_path,
+        env=env,
     )
     assert_one_line_error(result, 2, "UsageError")
     assert "sk-sentinel" not in result.stderr + result.stdout

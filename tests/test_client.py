@@ -37,7 +37,10 @@ def chunk(delta: dict[str, object] | None = None, finish: str | None = None, **e
     return b"data: " + json.dumps(body).encode() + b"\n\n"
 
 
-USAGE = b'data: {"id":"c1","object":"chat.completion.chunk","created":1,"model":"m","choices":[],"usage":{"prompt_tokens":2,"completion_tokens":3,"total_tokens":5}}\n\n'
+USAGE = (
+    b'data: {"id":"c1","object":"chat.completion.chunk","created":1,"model":"m","choices":[],'
+    b'"usage":{"prompt_tokens":2,"completion_tokens":3,"total_tokens":5}}\n\n'
+)
 DONE = b"data: [DONE]\n\n"
 
 
@@ -55,7 +58,9 @@ def full_stream(gap_s: float = 0.0, usage: bool = True) -> list[bytes]:
     return parts
 
 
-def responder(parts: list[bytes], status: int = 200, content_type: str = "text/event-stream", gap_s: float = 0.0) -> Callable[[httpx.Request], httpx.Response]:
+def responder(
+    parts: list[bytes], status: int = 200, content_type: str = "text/event-stream", gap_s: float = 0.0
+) -> Callable[[httpx.Request], httpx.Response]:
     seen: list[httpx.Request] = []
 
     async def body() -> AsyncIterator[bytes]:
@@ -72,7 +77,11 @@ def responder(parts: list[bytes], status: int = 200, content_type: str = "text/e
     return handler
 
 
-async def run(handler: Callable[[httpx.Request], httpx.Response], request: ChatRequest = REQUEST, api_key_env: str | None = None) -> Record:
+async def run(
+    handler: Callable[[httpx.Request], httpx.Response],
+    request: ChatRequest = REQUEST,
+    api_key_env: str | None = None,
+) -> Record:
     transport = HttpxTransport(httpx.AsyncClient(transport=httpx.MockTransport(handler)))
     target = Target(base_url="http://127.0.0.1:9/v1", model="m", api_key_env=api_key_env)
     client = ChatClient(target, transport)
@@ -104,27 +113,40 @@ async def test_without_usage_the_tokens_are_counted() -> None:
 
 
 async def test_null_content_first_chunk_is_not_a_token() -> None:
-    parts = [chunk({"role": "assistant", "content": None}), chunk({"content": "ka"}), chunk({}, finish="stop"), DONE]
+    parts = [
+        chunk({"role": "assistant", "content": None}),
+        chunk({"content": "ka"}),
+        chunk({}, finish="stop"),
+        DONE,
+    ]
     record = await run(responder(parts))
     assert record.outcome is Outcome.OK and record.output_tokens == 1
 
 
 async def test_tool_call_delta_counts_as_first_token() -> None:
-    call = {"tool_calls": [{"index": 0, "id": "t", "type": "function", "function": {"name": "f", "arguments": ""}}]}
+    call = {
+        "tool_calls": [
+            {"index": 0, "id": "t", "type": "function", "function": {"name": "f", "arguments": ""}}
+        ]
+    }
     parts = [chunk({"role": "assistant", "content": None}), chunk(call), chunk({}, finish="tool_calls"), DONE]
     record = await run(responder(parts))
     assert record.outcome is Outcome.OK and record.first_token_ns and record.output_tokens == 1
 
 
 async def test_rate_limited() -> None:
-    body = json.dumps({"error": {"message": "slow down", "type": "rate_limit", "param": None, "code": "rate_limited"}}).encode()
+    body = json.dumps(
+        {"error": {"message": "slow down", "type": "rate_limit", "param": None, "code": "rate_limited"}}
+    ).encode()
     record = await run(responder([body], status=429, content_type="application/json"))
     assert record.outcome is Outcome.RATE_LIMITED and record.status == 429
     assert record.error is not None and "slow down" in record.error
 
 
 async def test_http_error_keeps_the_message() -> None:
-    body = json.dumps({"error": {"message": "engine fell over", "type": "server_error", "param": None, "code": None}}).encode()
+    body = json.dumps(
+        {"error": {"message": "engine fell over", "type": "server_error", "param": None, "code": None}}
+    ).encode()
     record = await run(responder([body], status=503, content_type="application/json"))
     assert record.outcome is Outcome.HTTP_ERROR and record.status == 503
     assert record.error == "HTTP 503: engine fell over"
@@ -147,7 +169,11 @@ async def test_malformed_event_is_a_protocol_error() -> None:
 
 
 async def test_error_event_mid_stream() -> None:
-    parts = [chunk({"content": "ka"}), b'data: {"error": {"message": "overloaded", "code": "busy"}}\n\n', DONE]
+    parts = [
+        chunk({"content": "ka"}),
+        b'data: {"error": {"message": "overloaded", "code": "busy"}}\n\n',
+        DONE,
+    ]
     record = await run(responder(parts))
     assert record.outcome is Outcome.SERVER_ERROR_EVENT
     assert record.error is not None and "overloaded" in record.error
@@ -165,7 +191,9 @@ async def test_non_streamed_answer() -> None:
             "object": "chat.completion",
             "created": 1,
             "model": "m",
-            "choices": [{"index": 0, "message": {"role": "assistant", "content": "ka lo"}, "finish_reason": "stop"}],
+            "choices": [
+                {"index": 0, "message": {"role": "assistant", "content": "ka lo"}, "finish_reason": "stop"}
+            ],
             "usage": {"prompt_tokens": 2, "completion_tokens": 2, "total_tokens": 4},
         }
     ).encode()

@@ -89,8 +89,12 @@ def test_the_two_transports_agree(mock_target: Target) -> None:
     fast = measure(settings_for(mock_target, 4)).summary
     general = measure(settings_for(mock_target, 4, transport="httpx")).summary
     for metric in ("ttft", "itl", "e2e"):
-        assert general["latency"][metric]["mean_ms"] == pytest.approx(fast["latency"][metric]["mean_ms"], rel=0.05), metric
-    assert general["throughput"]["requests_per_s"] == pytest.approx(fast["throughput"]["requests_per_s"], rel=0.05)
+        assert general["latency"][metric]["mean_ms"] == pytest.approx(
+            fast["latency"][metric]["mean_ms"], rel=0.05
+        ), metric
+    assert general["throughput"]["requests_per_s"] == pytest.approx(
+        fast["throughput"]["requests_per_s"], rel=0.05
+    )
 
 
 def test_receive_error_against_the_server_stamps_is_small(mock_target: Target) -> None:

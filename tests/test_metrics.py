@@ -25,8 +25,8 @@ from loadrun.metrics import LATENCY_METRICS, PERCENTILES, HistogramSet, LatencyH
 PRECISION = 1e-3
 
 
-def _close(actual: float | None, expected: float) -> bool:
-    return actual is not None and abs(actual - expected) <= PRECISION * expected
+def _close(actual: float, expected: float) -> bool:
+    return abs(actual - expected) <= PRECISION * expected
 
 
 # --- published checks -------------------------------------------------------------------
@@ -129,7 +129,6 @@ def test_percentiles_agree_with_numpy(seed: int, median_ms: float, sigma: float,
 
     for percentile in (*PERCENTILES, 0.5, 10.0, 25.0, 75.0, 99.99, 100.0):
         got = hist.percentile_us(percentile)
-        assert got is not None
         at_rank = float(np.percentile(samples, percentile, method="inverted_cdf"))
         below = ordered[ordered < at_rank]
         candidates = [at_rank] if below.size == 0 else [at_rank, float(below[-1])]
@@ -140,7 +139,6 @@ def test_percentiles_agree_with_numpy(seed: int, median_ms: float, sigma: float,
         )
 
     assert _close(hist.mean_us, float(samples.mean()))
-    assert hist.min_us is not None and hist.max_us is not None
     assert int(ordered[0]) * (1 - PRECISION) <= hist.min_us <= int(ordered[0])
     assert int(ordered[-1]) <= hist.max_us <= int(ordered[-1]) * (1 + PRECISION)
     assert hist.count == size
@@ -183,9 +181,8 @@ def test_values_above_highest_are_counted_as_overflow() -> None:
     assert hist.count == 4
     assert hist.overflow == 3
     assert hist.percentile_us(25.0) == 10_007  # top of the ceiling's 8-us-wide bucket
-    assert hist.max_us is not None and hist.max_us > hist.highest_us
-    assert hist.percentile_us(50.0) is not None
-    assert hist.percentile_us(50.0) > hist.highest_us  # type: ignore[operator]
+    assert hist.max_us > hist.highest_us
+    assert hist.percentile_us(50.0) > hist.highest_us
 
 
 def test_overflow_survives_encode_decode_and_merge() -> None:
@@ -226,14 +223,29 @@ SUMMARY_KEYS = ["count", "mean_ms", "min_ms", "max_ms", "p50_ms", "p90_ms", "p95
 SUMMARY_KEYS.append("p99.9_ms")
 
 
-def test_empty_summary_has_none_values() -> None:
+def test_empty_histogram_summary_has_none_values_and_queries_raise() -> None:
     hist = LatencyHistogram()
     summary = hist.summary()
     assert list(summary) == SUMMARY_KEYS
     assert summary["count"] == 0
     assert all(summary[key] is None for key in SUMMARY_KEYS[1:])
-    assert hist.mean_us is None and hist.min_us is None and hist.max_us is None
-    assert hist.percentile_us(50.0) is None
+    for query in (
+        lambda: hist.mean_us,
+        lambda: hist.min_us,
+        lambda: hist.max_us,
+        lambda: hist.percentile_us(50.0),
+        lambda: hist.percentiles_us([50.0]),
+    ):
+        with pytest.raises(ValueError, match="empty"):
+            query()
+
+
+def test_full_summary_has_every_key_in_order() -> None:
+    hist = LatencyHistogram()
+    hist.record_us(12_345)
+    summary = hist.summary()
+    assert list(summary) == SUMMARY_KEYS
+    assert all(isinstance(summary[key], float) for key in SUMMARY_KEYS[1:])
 
 
 def test_summary_is_in_milliseconds() -> None:

@@ -10,6 +10,7 @@ byte and split in two at every offset (a CRLF split between chunks is the classi
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import re
 from collections.abc import Iterable, Sequence
 
@@ -292,9 +293,8 @@ def _reference_parse(stream: bytes) -> list[ServerSentEvent]:
         elif field == "id":
             if "\x00" not in value:
                 id_buffer = value
-        elif field == "retry":
-            if value and all(c in "0123456789" for c in value):
-                retry = int(value)
+        elif field == "retry" and value and all(c in "0123456789" for c in value):
+            retry = int(value)
     return events
 
 
@@ -335,7 +335,7 @@ def _streams(draw: st.DrawFn) -> bytes:
 def _split(stream: bytes, offsets: Sequence[int]) -> list[bytes]:
     cuts = sorted({min(offset, len(stream)) for offset in offsets})
     bounds = [0, *cuts, len(stream)]
-    return [stream[start:end] for start, end in zip(bounds, bounds[1:], strict=False)]
+    return [stream[start:end] for start, end in itertools.pairwise(bounds)]
 
 
 @settings(max_examples=300, deadline=None)
@@ -352,7 +352,5 @@ def test_whole_feed_matches_a_plain_transcription_of_the_spec(stream: bytes) -> 
 
 @settings(max_examples=200, deadline=None)
 @given(stream=st.binary(max_size=200), offsets=st.lists(st.integers(0, 200), max_size=8))
-def test_arbitrary_bytes_chunked_match_the_transcription(
-    stream: bytes, offsets: list[int]
-) -> None:
+def test_arbitrary_bytes_chunked_match_the_transcription(stream: bytes, offsets: list[int]) -> None:
     assert _parse(_split(stream, offsets)) == _reference_parse(stream)

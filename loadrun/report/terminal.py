@@ -20,7 +20,10 @@ _METRIC_TITLES = {
 
 
 def console(stderr: bool = False) -> Console:
-    return Console(stderr=stderr, highlight=False, soft_wrap=True)
+    out = Console(stderr=stderr, highlight=False, soft_wrap=True)
+    if not out.is_terminal:  # piped or captured: do not squeeze tables into 80 columns
+        out = Console(stderr=stderr, highlight=False, soft_wrap=True, width=120)
+    return out
 
 
 def say(message: str, *, stderr: bool = True) -> None:
@@ -38,7 +41,7 @@ def render_summary(summary: dict[str, Any], out: Console | None = None) -> None:
         f"concurrency {load.get('concurrency')}, measured {window.get('seconds', 0):.1f} s"
     )
     table = Table(title="latency, milliseconds", title_justify="left", show_edge=False, pad_edge=False)
-    table.add_column("metric")
+    table.add_column("metric", no_wrap=True)
     for key in _PERCENTILE_KEYS:
         table.add_column(key.removesuffix("_ms"), justify="right")
     table.add_column("samples", justify="right")
@@ -61,9 +64,13 @@ def render_summary(summary: dict[str, Any], out: Console | None = None) -> None:
         goodput = summary["goodput"]
         share = goodput.get("share_of_completed")
         share_text = f" ({share:.0%} of completed)" if share is not None else ""
-        out.print(f"goodput     {goodput['requests_per_s']:.2f} requests/s{share_text} within {', '.join(goodput['slos'])}")
-    outcomes = ", ".join(f"{name} {count}" for name, count in requests.get("by_outcome", {}).items()) or "none"
-    out.print(f"requests    {requests.get('measured', 0)} measured ({outcomes}); {requests.get('warmup', 0)} in warm-up")
+        slos = ", ".join(goodput["slos"])
+        out.print(f"goodput     {goodput['requests_per_s']:.2f} requests/s{share_text} within {slos}")
+    outcomes = (
+        ", ".join(f"{name} {count}" for name, count in requests.get("by_outcome", {}).items()) or "none"
+    )
+    measured, warmup = requests.get("measured", 0), requests.get("warmup", 0)
+    out.print(f"requests    {measured} measured ({outcomes}); {warmup} in warm-up")
     for error, count in requests.get("top_errors", {}).items():
         out.print(f"  [red]{count} x[/] {error}", markup=True)
     tokens = summary.get("tokens", {})
@@ -74,7 +81,9 @@ def render_summary(summary: dict[str, Any], out: Console | None = None) -> None:
     health = "[red]GENERATOR-LIMITED: timings are not trustworthy[/]" if generator.get("limited") else "ok"
     receive = generator.get("receive_error_p99_ms")
     receive_text = f", receive error p99 {receive:.2f} ms" if receive is not None else ""
-    out.print(f"generator   {health} (loop lag p99 {generator.get('loop_lag_p99_ms', 0):.2f} ms{receive_text})")
+    out.print(
+        f"generator   {health} (loop lag p99 {generator.get('loop_lag_p99_ms', 0):.2f} ms{receive_text})"
+    )
     if summary.get("interrupted"):
         out.print("[yellow]interrupted: the summary covers what was measured until then[/]")
     if summary.get("aborted"):
@@ -86,7 +95,14 @@ def render_summary(summary: dict[str, Any], out: Console | None = None) -> None:
 def render_calibration(rows: Sequence[dict[str, Any]], verdict: str, out: Console | None = None) -> None:
     out = out or console()
     table = Table(title="receive timing of this machine against the bundled mock", title_justify="left")
-    for column in ("streams", "events/s", "receive p50 ms", "receive p99 ms", "loop lag p99 ms", "within 1 ms"):
+    for column in (
+        "streams",
+        "events/s",
+        "receive p50 ms",
+        "receive p99 ms",
+        "loop lag p99 ms",
+        "within 1 ms",
+    ):
         table.add_column(column, justify="right")
     for row in rows:
         table.add_row(

@@ -12,6 +12,7 @@ from __future__ import annotations
 import asyncio
 import ssl
 from time import perf_counter_ns
+from typing import cast
 
 import httptools
 
@@ -47,8 +48,8 @@ class _Connection(asyncio.Protocol):
 
     # asyncio.Protocol
     def connection_made(self, transport: asyncio.BaseTransport) -> None:
-        assert isinstance(transport, asyncio.Transport)
-        self._transport = transport
+        # uvloop's transports are not asyncio.Transport subclasses, so no isinstance check.
+        self._transport = cast(asyncio.Transport, transport)
 
     def data_received(self, data: bytes) -> None:
         self._ts = perf_counter_ns()
@@ -128,9 +129,7 @@ class _Connection(asyncio.Protocol):
         """True when the response had neither a length nor chunked framing (read to EOF)."""
         for name, value in self._headers:
             lower = name.lower()
-            if lower == b"content-length" or (
-                lower == b"transfer-encoding" and b"chunked" in value.lower()
-            ):
+            if lower == b"content-length" or (lower == b"transfer-encoding" and b"chunked" in value.lower()):
                 return False
         return True
 
@@ -186,9 +185,14 @@ class FastTransport:
                     server_hostname=endpoint.host if ssl_context else None,
                 )
         except TimeoutError as exc:
-            raise RequestFailed("timeout_connect", f"connect timed out after {self._connect_timeout_s:g} s") from exc
+            raise RequestFailed(
+                "timeout_connect", f"connect timed out after {self._connect_timeout_s:g} s"
+            ) from exc
         except OSError as exc:
-            raise RequestFailed("connection_error", f"cannot connect to {endpoint.host}:{endpoint.port}: {exc.strerror or exc}") from exc
+            raise RequestFailed(
+                "connection_error",
+                f"cannot connect to {endpoint.host}:{endpoint.port}: {exc.strerror or exc}",
+            ) from exc
         return protocol
 
     def _ssl_context(self) -> ssl.SSLContext:
