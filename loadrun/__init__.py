@@ -1,7 +1,9 @@
 """loadrun: benchmark and load-test chat-completions endpoints, honestly measured."""
 
 from loadrun._version import __version__
+from loadrun.alerts import GateOutputs, deliver, post_webhook
 from loadrun.client import ChatClient
+from loadrun.compare import CompareSettings, ComparisonResult, compare, compare_async
 from loadrun.driver import ClosedLoopPlan, run_closed_loop
 from loadrun.errors import (
     LoadrunError,
@@ -14,28 +16,42 @@ from loadrun.errors import (
     TargetUnreachable,
     UsageError,
 )
+from loadrun.export import export_folder
+from loadrun.gate import GateReport, GateSettings, Rule, Verdict, gate_folder, gate_measure, gate_summary
+from loadrun.history import History, HistoryRun, MetricPercentile, RunFilter
 from loadrun.metrics import HistogramSet, LatencyHistogram
 from loadrun.profile import LoadSpec, Profile, RequestSpec, load_profile
 from loadrun.protocol import ChatRequest
 from loadrun.record import Outcome, Record, TokenSource
 from loadrun.recorder import Recorder
+from loadrun.report.html import write_report
 from loadrun.runner import MeasureSettings, RunResult, measure, measure_async
 from loadrun.slo import Slo
 from loadrun.sse import EventStreamParser, ServerSentEvent
 from loadrun.target import Target
+from loadrun.targets import Prices, TargetsFile, TargetSpec, load_targets
 
 __all__ = [
     "ChatClient",
     "ChatRequest",
     "ClosedLoopPlan",
+    "CompareSettings",
+    "ComparisonResult",
     "EventStreamParser",
+    "GateOutputs",
+    "GateReport",
+    "GateSettings",
     "HistogramSet",
+    "History",
+    "HistoryRun",
     "LatencyHistogram",
     "LoadSpec",
     "LoadrunError",
     "MeasureSettings",
     "MeasurementError",
+    "MetricPercentile",
     "Outcome",
+    "Prices",
     "Profile",
     "ProfileError",
     "ProtocolViolation",
@@ -43,18 +59,33 @@ __all__ = [
     "Recorder",
     "RequestFailed",
     "RequestSpec",
+    "Rule",
+    "RunFilter",
     "RunResult",
     "ServerSentEvent",
     "Slo",
     "StoreError",
     "Target",
     "TargetError",
+    "TargetSpec",
     "TargetUnreachable",
+    "TargetsFile",
     "TokenSource",
     "UsageError",
+    "Verdict",
     "__version__",
+    "compare",
+    "compare_async",
+    "deliver",
+    "export_folder",
+    "gate_folder",
+    "gate_measure",
+    "gate_summary",
     "load_profile",
+    "load_targets",
     "measure",
     "measure_async",
+    "post_webhook",
     "run_closed_loop",
+    "write_report",
 ]

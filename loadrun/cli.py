@@ -63,6 +63,10 @@ def measure_command(
     json_output: Annotated[bool, typer.Option("--json", help="Print the summary as JSON on stdout.")] = False,
     out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
     no_save: Annotated[bool, typer.Option("--no-save", help="Write no run folder.")] = False,
+    history: Annotated[
+        Path | None, typer.Option(help="History database; default: OUT/history.sqlite3 (none if --no-save).")
+    ] = None,
+    no_history: Annotated[bool, typer.Option("--no-history", help="Store no row in the history.")] = False,
     transport: Annotated[str, typer.Option(help=f"Transport: {' or '.join(TRANSPORT_NAMES)}.")] = "fast",
     mock_engine: Annotated[
         str, typer.Option(help="Engine preset or TOML of the bundled mock.")
@@ -114,14 +118,14 @@ def measure_command(
         connect_timeout_s=connect_timeout,
         time_limit_s=time_limit,
         confirmed=yes,
+        history_path=history,
+        record_history=not no_history,
     )
     if target is not None and not target.is_loopback and not yes:
         _confirm(target, settings)
         settings = _replace_confirmed(settings)
     if target is None:
-        say(
-            f"No --base-url given: starting the bundled mock server (engine {mock_engine}) on a loopback port."
-        )
+        say(f"No --base-url given: starting the bundled mock server (engine {mock_engine}) on loopback.")
     result = measure(settings)
     if json_output:
         sys.stdout.write(jsonfast.dumps(result.summary).decode() + "\n")
@@ -159,6 +163,405 @@ def mock_command(
     from mock_server.__main__ import main as mock_main
 
     raise typer.Exit(mock_main(["--host", host, "--port", str(port), "--engine", engine]))
+
+
+# --- regression gate and history -------------------------------------------------------------
+
+_RULE_HELP = (
+    "How far a percentile may rise against the baseline: 'METRIC.pNN 15%', 'METRIC.pNN 50ms' or "
+    "both (then both must be exceeded). Repeatable; default: ttft.p95, tpot.p95 and e2e.p95 15%."
+)
+
+
+@app.command("gate")
+def gate_command(
+    profile_path: Annotated[
+        Path | None, typer.Argument(metavar="[PROFILE]", help="Profile TOML to run; default: a short chat.")
+    ] = None,
+    from_run: Annotated[
+        Path | None, typer.Option("--from-run", help="Gate this finished run folder instead of running.")
+    ] = None,
+    rule: Annotated[list[str] | None, typer.Option("--rule", help=_RULE_HELP)] = None,
+    target_name: Annotated[
+        str | None, typer.Option(help="The target's name in the history (keep one name across deploys).")
+    ] = None,
+    baseline: Annotated[int | None, typer.Option(help="Compare with this run id of the history.")] = None,
+    last: Annotated[int, typer.Option(min=1, help="Baseline: median of the last K passing runs.")] = 5,
+    confidence: Annotated[
+        float, typer.Option(min=0.5, max=0.999, help="Confidence of the bootstrap interval.")
+    ] = 0.95,
+    max_error_rate: Annotated[
+        float, typer.Option(min=0.0, max=1.0, help="Share of failed requests that makes the run invalid.")
+    ] = 0.05,
+    min_samples: Annotated[
+        int, typer.Option(min=1, help="Fewer samples of a rule's metric make the run invalid.")
+    ] = 100,
+    history: Annotated[
+        Path | None, typer.Option(help="History database; default: OUT/history.sqlite3.")
+    ] = None,
+    json_output: Annotated[bool, typer.Option("--json", help="Print the verdict as JSON on stdout.")] = False,
+    junit: Annotated[Path | None, typer.Option(help="Write a JUnit XML file for CI systems.")] = None,
+    prometheus: Annotated[
+        Path | None, typer.Option(help="Write a Prometheus text file (a node exporter's textfile collector).")
+    ] = None,
+    webhook: Annotated[str | None, typer.Option(help="POST the verdict as JSON to this URL.")] = None,
+    webhook_env: Annotated[
+        str | None, typer.Option(help="NAME of the environment variable holding the webhook URL.")
+    ] = None,
+    webhook_timeout: Annotated[float, typer.Option(min=0.1, help="Seconds per webhook attempt.")] = 10.0,
+    webhook_retries: Annotated[int, typer.Option(min=0, help="Webhook attempts after a failed one.")] = 2,
+    base_url: Annotated[str | None, typer.Option(help="API base URL, e.g. http://127.0.0.1:8000/v1.")] = None,
+    model: Annotated[str | None, typer.Option(help="Model name to request.")] = None,
+    api_key_env: Annotated[
+        str | None, typer.Option(help="NAME of the environment variable holding the API key.")
+    ] = None,
+    header: Annotated[
+        list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")
+    ] = None,
+    concurrency: Annotated[
+        int | None, typer.Option("--concurrency", "-c", min=1, help="Requests in flight.")
+    ] = None,
+    requests: Annotated[
+        int | None, typer.Option("--requests", "-n", min=1, help="Measured requests.")
+    ] = None,
+    duration: Annotated[
+        float | None, typer.Option("--duration", "-d", min=0.1, help="Measured seconds.")
+    ] = None,
+    warmup: Annotated[
+        float | None, typer.Option(min=0.0, help="Warm-up seconds, kept out of the measurement.")
+    ] = None,
+    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    no_save: Annotated[bool, typer.Option("--no-save", help="Write no run folder (history still).")] = False,
+    transport: Annotated[str, typer.Option(help=f"Transport: {' or '.join(TRANSPORT_NAMES)}.")] = "fast",
+    mock_engine: Annotated[
+        str, typer.Option(help="Engine preset or TOML of the bundled mock.")
+    ] = DEFAULT_MOCK_ENGINE,
+    timeout: Annotated[float, typer.Option(min=0.001, help="Seconds a whole request may take.")] = 600.0,
+    connect_timeout: Annotated[float, typer.Option(min=0.001, help="Seconds to open a connection.")] = 10.0,
+    time_limit: Annotated[
+        float, typer.Option(min=1.0, help="Hard bound on the whole run, seconds.")
+    ] = 3600.0,
+    insecure_skip_tls_verify: Annotated[
+        bool, typer.Option("--insecure-skip-tls-verify", help="Turn TLS certificate checks off.")
+    ] = False,
+    yes: Annotated[
+        bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")
+    ] = False,
+) -> None:
+    """Run a profile (or take a finished run) and compare it with its baseline.
+
+    Exit code 0: pass, or no baseline yet (the run becomes the first); 1: regression;
+    2: invalid run (too many errors, generator-limited, too few samples) or bad input.
+    """
+    from loadrun.alerts import GateOutputs, deliver, webhook_url
+    from loadrun.gate import DEFAULT_RULES, GateSettings, Rule, gate_folder, gate_measure
+    from loadrun.history import HISTORY_FILE
+    from loadrun.report.terminal import render_gate
+
+    settings = GateSettings(
+        history_path=history or out / HISTORY_FILE,
+        rules=tuple(Rule.parse(text) for text in rule) if rule else DEFAULT_RULES,
+        target_name=target_name,
+        baseline_id=baseline,
+        last=last,
+        confidence=confidence,
+        max_error_rate=max_error_rate,
+        min_samples=min_samples,
+    )
+    outputs = GateOutputs(
+        junit_path=junit,
+        prometheus_path=prometheus,
+        webhook_url=webhook_url(webhook, webhook_env),
+        webhook_timeout_s=webhook_timeout,
+        webhook_retries=webhook_retries,
+    )
+    outputs.check()
+    if from_run is not None:
+        if profile_path is not None or base_url is not None:
+            raise UsageError("--from-run gates a finished run: give no profile and no --base-url")
+        report = gate_folder(from_run, settings)
+    else:
+        if requests is not None and duration is not None:
+            raise UsageError("give --requests or --duration, not both")
+        target = _target(base_url, model, api_key_env, header or [], insecure_skip_tls_verify)
+        measure_settings = MeasureSettings(
+            profile=load_profile(profile_path) if profile_path else Profile(),
+            target=target,
+            concurrency=concurrency,
+            duration_s=duration,
+            requests=requests,
+            warmup_s=warmup,
+            out_dir=None if no_save else out,
+            transport=transport,
+            mock_engine=mock_engine,
+            total_timeout_s=timeout,
+            connect_timeout_s=connect_timeout,
+            time_limit_s=time_limit,
+            confirmed=yes,
+        )
+        if target is not None and not target.is_loopback and not yes:
+            _confirm(target, measure_settings)
+            measure_settings = _replace_confirmed(measure_settings)
+        if target is None:
+            say(f"No --base-url given: starting the bundled mock server (engine {mock_engine}) on loopback.")
+        report = gate_measure(measure_settings, settings)
+    if json_output:
+        sys.stdout.write(jsonfast.dumps(report.to_json()).decode() + "\n")
+    else:
+        render_gate(report.to_json())
+    for warning in deliver(report, outputs):
+        say(f"Warning: {warning}")
+    raise typer.Exit(report.exit_code)
+
+
+history_app = typer.Typer(help="Stored runs: list them, draw a trend, pin a baseline, show one.")
+app.add_typer(history_app, name="history")
+
+
+@history_app.callback(invoke_without_command=True)
+def history_group(context: typer.Context) -> None:
+    if context.invoked_subcommand is None:  # plain `loadrun history`: its help, exit 0
+        sys.stdout.write(context.get_help() + "\n")
+
+_HistoryOption = Annotated[Path, typer.Option("--history", help="The history database.")]
+_DEFAULT_HISTORY = Path("runs") / "history.sqlite3"
+
+
+@history_app.command("list")
+def history_list_command(
+    history: _HistoryOption = _DEFAULT_HISTORY,
+    target: Annotated[str | None, typer.Option(help="Only this target name.")] = None,
+    profile: Annotated[str | None, typer.Option(help="Only this profile name or hash prefix.")] = None,
+    verdict: Annotated[
+        str | None, typer.Option(help="Only this verdict: pass, regression, invalid, no_baseline, none.")
+    ] = None,
+    since: Annotated[str | None, typer.Option(help="Only runs since a date or an age (7d, 36h).")] = None,
+    limit: Annotated[int, typer.Option(min=1, help="The most recent N runs.")] = 30,
+    json_output: Annotated[bool, typer.Option("--json", help="Print the runs as JSON lines.")] = False,
+) -> None:
+    """List stored runs, oldest first."""
+    from loadrun.history import History, parse_since
+    from loadrun.report.terminal import render_history
+
+    with History(history, create=False) as db:
+        runs = db.find(_run_filter(target, profile, verdict, parse_since(since) if since else None, limit))
+    if json_output:
+        sys.stdout.write("".join(jsonfast.dumps(run.brief()).decode() + "\n" for run in runs))
+    else:
+        render_history([run.brief() for run in runs])
+
+
+@history_app.command("trend")
+def history_trend_command(
+    series: Annotated[
+        list[str] | None, typer.Option("--series", "-s", help="METRIC.pNN to follow (repeatable).")
+    ] = None,
+    svg: Annotated[Path | None, typer.Option(help="Also draw the trend into this SVG file.")] = None,
+    history: _HistoryOption = _DEFAULT_HISTORY,
+    target: Annotated[str | None, typer.Option(help="Only this target name.")] = None,
+    profile: Annotated[str | None, typer.Option(help="Only this profile name or hash prefix.")] = None,
+    since: Annotated[str | None, typer.Option(help="Only runs since a date or an age (7d, 36h).")] = None,
+    limit: Annotated[int, typer.Option(min=1, help="The most recent N runs.")] = 100,
+    json_output: Annotated[bool, typer.Option("--json", help="Print the points as JSON lines.")] = False,
+) -> None:
+    """Chosen percentiles of stored runs over time: in the terminal and as SVG."""
+    from loadrun.alerts import write_atomically
+    from loadrun.history import History, MetricPercentile, parse_since, trend
+    from loadrun.report.terminal import render_trend
+    from loadrun.report.trend_svg import trend_svg
+
+    chosen = [MetricPercentile.parse(text) for text in series or ["ttft.p50", "ttft.p95", "e2e.p95"]]
+    labels = [item.label for item in chosen]
+    with History(history, create=False) as db:
+        runs = db.find(_run_filter(target, profile, None, parse_since(since) if since else None, limit))
+        rows = trend(db, runs, chosen)
+    points = [
+        {
+            "id": row.run.id,
+            "started_at": row.run.started_at,
+            "verdict": row.run.verdict,
+            "values_ms": row.values_ms,
+        }
+        for row in rows
+    ]
+    if json_output:
+        sys.stdout.write("".join(jsonfast.dumps(point).decode() + "\n" for point in points))
+    else:
+        render_trend(labels, points)
+    if svg is not None:
+        title = f"{target or 'all targets'} / {profile or 'all profiles'}: {', '.join(labels)}"
+        try:
+            write_atomically(svg, trend_svg(rows, labels, title))
+        except OSError as exc:
+            raise UsageError(f"cannot write {svg}: {exc.strerror or exc}") from exc
+        say(f"trend drawn into {svg}")
+
+
+@history_app.command("pin")
+def history_pin_command(
+    run_id: Annotated[int, typer.Argument(help="The run to make the baseline of its target and profile.")],
+    remove: Annotated[bool, typer.Option("--remove", help="Unpin it instead.")] = False,
+    history: _HistoryOption = _DEFAULT_HISTORY,
+) -> None:
+    """Pin a run as the baseline of its target and profile (the gate compares with it)."""
+    from loadrun.history import History
+
+    with History(history, create=False) as db:
+        run = db.pin(run_id, pinned=not remove)
+    state = "pinned as the baseline of" if run.pinned else "no longer pinned for"
+    say(f"run {run.id} {state} target {run.target_name!r}, profile {run.profile_name!r} ({run.profile_hash})")
+
+
+@history_app.command("show")
+def history_show_command(
+    run_id: Annotated[int, typer.Argument(help="The run to show.")],
+    history: _HistoryOption = _DEFAULT_HISTORY,
+) -> None:
+    """Print one stored run as JSON: configuration, summary, environment, verdict."""
+    from loadrun.history import History
+
+    with History(history, create=False) as db:
+        run = db.get(run_id)
+    data = {
+        **run.brief(),
+        "target_url": run.target_url,
+        "loadrun_version": run.loadrun_version,
+        "config": run.config,
+        "summary": run.summary,
+        "environment": run.environment,
+        "gate": run.gate,
+    }
+    sys.stdout.write(jsonfast.dumps(data).decode() + "\n")
+
+
+def _run_filter(
+    target: str | None, profile: str | None, verdict: str | None, since_unix: float | None, limit: int
+) -> Any:
+    from loadrun.history import RunFilter
+
+    verdicts = ("pass", "regression", "invalid", "no_baseline", "none")
+    if verdict is not None and verdict not in verdicts:
+        raise UsageError(f"--verdict {verdict!r}: one of {', '.join(verdicts)}")
+    return RunFilter(target=target, profile=profile, verdict=verdict, since_unix=since_unix, limit=limit)
+
+
+@app.command("compare")
+def compare_command(
+    targets_path: Annotated[
+        Path, typer.Argument(metavar="TARGETS", help="Targets TOML (names, URLs, prices).")
+    ],
+    profile_path: Annotated[
+        Path | None, typer.Argument(metavar="[PROFILE]", help="Profile TOML; default: a short chat.")
+    ] = None,
+    concurrency: Annotated[
+        list[int] | None, typer.Option("--concurrency", "-c", min=1, help="Load level (repeatable).")
+    ] = None,
+    rounds: Annotated[int, typer.Option(min=1, help="Turns per target and level (A B C A B C ...).")] = 3,
+    requests_per_round: Annotated[
+        int | None, typer.Option("--requests-per-round", "-n", min=1, help="Measured requests per turn.")
+    ] = None,
+    seconds_per_round: Annotated[
+        float | None, typer.Option("--seconds-per-round", "-d", min=0.1, help="Measured seconds per turn.")
+    ] = None,
+    warmup: Annotated[float | None, typer.Option(min=0.0, help="Warm-up seconds of every turn.")] = None,
+    confidence: Annotated[
+        float, typer.Option(min=0.5, max=0.999, help="Confidence for all intervals of a pair together.")
+    ] = 0.95,
+    smallest_difference: Annotated[
+        float, typer.Option(min=0.0, max=0.9, help="Relative difference below which targets are alike.")
+    ] = 0.05,
+    percentile: Annotated[
+        list[float] | None, typer.Option(help="Percentile to compare (repeatable); default 50 and 90.")
+    ] = None,
+    resamples: Annotated[int, typer.Option(min=200, help="Bootstrap resamples.")] = 4000,
+    seed: Annotated[int, typer.Option(help="Seed of the bootstrap.")] = 0,
+    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    json_output: Annotated[bool, typer.Option("--json", help="Print compare.json on stdout.")] = False,
+    time_limit: Annotated[float, typer.Option(min=1.0, help="Hard bound on the comparison, s.")] = 3600.0,
+    yes: Annotated[
+        bool, typer.Option("--yes", help="Confirm loading targets that are not on this machine.")
+    ] = False,
+) -> None:
+    """Compare targets on one workload in interleaved rounds; writes compare.json and report.html."""
+    import dataclasses
+
+    from loadrun.compare import CompareSettings, RoundDone, compare, plan_text
+    from loadrun.report.terminal import render_comparison
+    from loadrun.targets import load_targets
+
+    targets = load_targets(targets_path)
+    settings = CompareSettings(
+        targets=targets.targets,
+        profile=load_profile(profile_path) if profile_path else Profile(),
+        levels=tuple(concurrency or ()),
+        rounds=rounds,
+        requests_per_round=requests_per_round,
+        seconds_per_round=seconds_per_round,
+        warmup_s=warmup,
+        confidence=confidence,
+        smallest_difference=smallest_difference,
+        percentiles=tuple(percentile or (50.0, 90.0)),
+        resamples=resamples,
+        seed=seed,
+        out_dir=out,
+        time_limit_s=time_limit,
+        confirmed=yes,
+        description=targets.description,
+    )
+    if not yes and not all(spec.is_loopback for spec in settings.targets):
+        say(plan_text(settings))
+        if not sys.stdin.isatty():
+            raise UsageError("not confirmed: pass --yes to load targets that are not on this machine")
+        if not typer.confirm("Send this load?", default=False, err=True):
+            raise UsageError("not confirmed; nothing was sent")
+        settings = dataclasses.replace(settings, confirmed=True)
+    mocks = [spec.name for spec in settings.targets if spec.is_mock]
+    if mocks:
+        say(f"Starting the bundled mock server for {', '.join(mocks)} on loopback ports.")
+
+    def progress(done: RoundDone) -> None:
+        requests = done.summary["requests"]
+        ttft = done.summary["latency"]["ttft"].get("p50_ms")
+        ttft_text = f", TTFT p50 {ttft:.1f} ms" if ttft is not None else ""
+        say(
+            f"concurrency {done.level}, round {done.round}/{done.rounds}, {done.target}: "
+            f"{requests['ok']} ok, {requests['failed']} failed{ttft_text}"
+        )
+
+    result = compare(settings, on_round=progress)
+    if json_output:
+        sys.stdout.write(jsonfast.dumps(result.data).decode() + "\n")
+    else:
+        render_comparison(result.data)
+    say(f"comparison folder {result.folder}")
+    if result.report is not None:
+        say(f"report            {result.report}")
+
+
+@app.command("report")
+def report_command(
+    folder: Annotated[Path, typer.Argument(metavar="RUN_FOLDER", help="A run, comparison or capacity run.")],
+    output: Annotated[
+        Path | None, typer.Option(help="Where to write the HTML; default RUN_FOLDER/report.html.")
+    ] = None,
+) -> None:
+    """Write the self-contained HTML report of a run folder."""
+    from loadrun.report.html import write_report
+
+    say(f"report {write_report(folder, output)}")
+
+
+@app.command("export")
+def export_command(
+    folder: Annotated[Path, typer.Argument(metavar="RUN_FOLDER", help="A run or comparison folder.")],
+    fmt: Annotated[str, typer.Option("--format", help="csv or parquet (needs pyarrow).")] = "csv",
+    out: Annotated[Path | None, typer.Option(help="Folder for the files; default RUN_FOLDER.")] = None,
+) -> None:
+    """Write a run folder's records and summaries as CSV or Parquet tables."""
+    from loadrun.export import export_folder
+
+    for path in export_folder(folder, fmt, out):
+        say(f"wrote {path}")
 
 
 def _target(

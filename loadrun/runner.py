@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import contextlib
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -23,6 +23,7 @@ from loadrun._version import __version__
 from loadrun.client import ChatClient
 from loadrun.driver import ClosedLoopPlan, LevelResult, run_closed_loop
 from loadrun.errors import TargetUnreachable, UsageError
+from loadrun.history import HISTORY_FILE, record_run
 from loadrun.monitor import LoopLagMonitor
 from loadrun.profile import Profile
 from loadrun.record import Outcome, Record
@@ -56,6 +57,17 @@ class MeasureSettings:
     time_limit_s: float = 3600.0
     confirmed: bool = False
     """Set once the user has agreed to load a target that is not on this machine."""
+    history_path: Path | None = None
+    """The history database; None: history.sqlite3 in out_dir (none when out_dir is None too)."""
+    record_history: bool = True
+    """Store the run in the history database (the gate turns this off and stores it itself)."""
+
+    def history_file(self) -> Path | None:
+        if not self.record_history:
+            return None
+        if self.history_path is not None:
+            return self.history_path
+        return self.out_dir / HISTORY_FILE if self.out_dir is not None else None
 
     def plan(self) -> ClosedLoopPlan:
         load = self.profile.load
@@ -76,6 +88,10 @@ class MeasureSettings:
 class RunResult:
     summary: dict[str, Any]
     folder: Path | None
+    history_id: int | None = None
+    """The run's row in the history database, when it was stored there."""
+    config: dict[str, Any] = field(default_factory=dict)
+    """The resolved configuration (what config.json holds)."""
 
 
 def measure(settings: MeasureSettings) -> RunResult:
@@ -83,7 +99,12 @@ def measure(settings: MeasureSettings) -> RunResult:
     return anyio.run(measure_async, settings, backend="asyncio", backend_options=event_loop_options())
 
 
-async def measure_async(settings: MeasureSettings, stop: anyio.Event | None = None) -> RunResult:
+async def measure_async(
+    settings: MeasureSettings,
+    stop: anyio.Event | None = None,
+    observe: Callable[[Record], None] | None = None,
+) -> RunResult:
+    """Run one load level; ``observe`` sees every finished Record as it arrives (keep it cheap)."""
     plan = settings.plan()
     with _target_for(settings) as (target, mock_info):
         if not target.is_loopback and not settings.confirmed:
@@ -91,7 +112,7 @@ async def measure_async(settings: MeasureSettings, stop: anyio.Event | None = No
                 f"{target.base_url} is not on this machine: confirm that you may load it (--yes)"
             )
         await _check_reachable(target, settings.connect_timeout_s)
-        return await _run_level(settings, plan, target, mock_info, stop or anyio.Event())
+        return await _run_level(settings, plan, target, mock_info, stop or anyio.Event(), observe)
 
 
 async def _run_level(
@@ -100,10 +121,14 @@ async def _run_level(
     target: Target,
     mock_info: dict[str, Any] | None,
     stop: anyio.Event,
+    observe: Callable[[Record], None] | None = None,
 ) -> RunResult:
     label = f"{settings.profile.name}-c{plan.concurrency}"
     folder = RunFolder.create(settings.out_dir, label) if settings.out_dir is not None else None
     started_at = time.strftime("%Y-%m-%dT%H:%M:%S%z")
+    transport = make_transport(
+        settings.transport, connect_timeout_s=settings.connect_timeout_s, verify_tls=target.verify_tls
+    )
     config = {
         "loadrun_version": __version__,
         "started_at": started_at,
@@ -112,14 +137,12 @@ async def _run_level(
         "profile": settings.profile.describe(),
         "load": _plan_json(plan),
         "transport": settings.transport,
+        "receive_clock": transport.receive_clock(target.endpoint),
         "slos": [slo.label() for slo in settings.slos],
         "timeouts": {"connect_s": settings.connect_timeout_s, "total_s": settings.total_timeout_s},
     }
     if folder is not None:
         folder.write_json(CONFIG_FILE, config)
-    transport = make_transport(
-        settings.transport, connect_timeout_s=settings.connect_timeout_s, verify_tls=target.verify_tls
-    )
     client = ChatClient(target, transport, total_timeout_s=settings.total_timeout_s)
     monitor = LoopLagMonitor()
     breaker = _UnreachableBreaker(limit=max(20, 2 * plan.concurrency), stop=stop)
@@ -131,6 +154,8 @@ async def _run_level(
         assert recorder is not None
         recorder.add(record)
         breaker.see(record)
+        if observe is not None:
+            observe(record)
         if len(recorder._pending) >= ABSORB_EVERY:
             recorder.absorb()
 
@@ -153,7 +178,12 @@ async def _run_level(
     summary = _summary(config, recorder, level, monitor, breaker, folder)
     if folder is not None:
         folder.write_json(SUMMARY_FILE, summary)
-    return RunResult(summary, folder.path if folder else None)
+    history = settings.history_file()
+    history_id = None
+    if history is not None:
+        # After the run, off the event loop: a busy database must not stall anything timed.
+        history_id = await anyio.to_thread.run_sync(record_run, history, summary, config)
+    return RunResult(summary, folder.path if folder else None, history_id, config)
 
 
 def _summary(

@@ -32,9 +32,7 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="NAME_OR_TOML",
         help=f"engine preset ({', '.join(preset_names())}) or a TOML file (default small-fast)",
     )
-    parser.add_argument(
-        "--model", default=None, help="model name to report (overrides the engine's)"
-    )
+    parser.add_argument("--model", default=None, help="model name to report (overrides the engine's)")
     parser.add_argument("--seed", type=int, default=None, help="seed of the generated text")
     parser.add_argument(
         "--event-loop",
@@ -78,9 +76,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         config = load_config(args.engine)
         overrides = {
-            key: value
-            for key, value in (("model", args.model), ("seed", args.seed))
-            if value is not None
+            key: value for key, value in (("model", args.model), ("seed", args.seed)) if value is not None
         }
         config = dataclasses.replace(config, **overrides)
     except (ConfigError, ValueError) as exc:
@@ -90,9 +86,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         with asyncio.Runner(loop_factory=_loop_factory(args.event_loop)) as runner:
             return runner.run(_serve_until_signal(config, args.host, args.port))
     except OSError as exc:
-        print(
-            f"mock_server: error: cannot listen on {args.host}:{args.port}: {exc}", file=sys.stderr
-        )
+        print(f"mock_server: error: cannot listen on {args.host}:{args.port}: {exc}", file=sys.stderr)
         return 1
 
 

@@ -10,7 +10,9 @@ Routes:
   Text completions have no role chunk. Every chunk carries ``mock_sent_ns``, the server's
   ``time.perf_counter_ns()`` right before the write, so a client on the same host can
   measure its own receive delay. Non-streaming answers come when the sequence finishes.
-- ``GET /v1/models``, ``GET /health``, ``GET /mock/stats``.
+- ``GET /v1/models``, ``GET /health``, ``GET /mock/stats``; ``POST /mock/stats/reset``
+  answers the stats so far and restarts the pacing and delivery-pass windows, so a
+  measurement can leave out its warm-up (the counters stay cumulative: take differences).
 - Errors: ``{"error": {"message", "type", "param", "code"}}`` with 400, 404 or 405.
 
 Hot path: a content chunk is three byte strings joined (the request's cached head, the
@@ -22,7 +24,8 @@ from __future__ import annotations
 import itertools
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from time import perf_counter_ns
 from typing import Any
 
 from mock_server import jsoncodec
@@ -38,13 +41,11 @@ _COMPLETION_OBJECT = "text_completion"
 
 # Per-word tails of a content chunk, after the request's head ('..."choices":[').
 _CHAT_WORD_BODIES: tuple[bytes, ...] = tuple(
-    b'{"index":0,"delta":{"content":"%b "},"finish_reason":null}],"mock_sent_ns":'
-    % word.encode("ascii")
+    b'{"index":0,"delta":{"content":"%b "},"finish_reason":null}],"mock_sent_ns":' % word.encode("ascii")
     for word in VOCABULARY
 )
 _COMPLETION_WORD_BODIES: tuple[bytes, ...] = tuple(
-    b'{"index":0,"text":"%b ","finish_reason":null,"logprobs":null}],"mock_sent_ns":'
-    % word.encode("ascii")
+    b'{"index":0,"text":"%b ","finish_reason":null,"logprobs":null}],"mock_sent_ns":' % word.encode("ascii")
     for word in VOCABULARY
 )
 _CHAT_ROLE_BODY = (
@@ -55,8 +56,7 @@ _CHAT_FINISH_BODIES = {
     for reason in ("stop", "length")
 }
 _COMPLETION_FINISH_BODIES = {
-    reason: b'{"index":0,"text":"","finish_reason":"%b","logprobs":null}],"mock_sent_ns":'
-    % reason.encode()
+    reason: b'{"index":0,"text":"","finish_reason":"%b","logprobs":null}],"mock_sent_ns":' % reason.encode()
     for reason in ("stop", "length")
 }
 
@@ -81,10 +81,22 @@ class GenerationRequest:
     include_usage: bool
 
 
-def error_body(message: str, *, type_: str, param: str | None, code: str | None) -> bytes:
-    return jsoncodec.dumps(
-        {"error": {"message": message, "type": type_, "param": param, "code": code}}
-    )
+def error_body(
+    message: str, *, type_: str = "invalid_request_error", param: str | None, code: str | None
+) -> bytes:
+    return jsoncodec.dumps({"error": {"message": message, "type": type_, "param": param, "code": code}})
+
+
+def _send_error(
+    responder: Responder,
+    status: int,
+    message: str,
+    *,
+    param: str | None = None,
+    code: str | None = None,
+    headers: tuple[tuple[str, str], ...] = (),
+) -> None:
+    responder.send(status, error_body(message, param=param, code=code), headers=headers)
 
 
 def parse_chat_request(document: Any) -> GenerationRequest:
@@ -97,9 +109,7 @@ def parse_chat_request(document: Any) -> GenerationRequest:
     texts: list[str] = []
     for position, message in enumerate(messages):
         if not isinstance(message, dict) or not isinstance(message.get("role"), str):
-            raise InvalidRequest(
-                f"messages[{position}] must be an object with a string 'role'", "messages"
-            )
+            raise InvalidRequest(f"messages[{position}] must be an object with a string 'role'", "messages")
         texts.extend(_message_texts(message.get("content"), position))
     return _common_fields(document, " ".join(texts))
 
@@ -169,39 +179,62 @@ def _common_fields(document: dict[str, Any], prompt: str) -> GenerationRequest:
     return GenerationRequest(prompt, max_tokens, stream, include_usage)
 
 
+@dataclass(slots=True)
+class _Answer:
+    """What one accepted request will answer: identity, sizes, and (once known) its words."""
+
+    chat: bool
+    request_id: str
+    created: int
+    model: str
+    prompt_tokens: int
+    output_tokens: int
+    finish_reason: str
+    words: list[int] = field(default_factory=list)
+
+    @property
+    def usage(self) -> dict[str, int]:
+        return {
+            "prompt_tokens": self.prompt_tokens,
+            "completion_tokens": self.output_tokens,
+            "total_tokens": self.prompt_tokens + self.output_tokens,
+        }
+
+
 class _StreamReply:
     """Feeds one streamed answer: one chunk per token, the tail in one final write."""
 
-    __slots__ = (
-        "_finish_body",
-        "_head",
-        "_responder",
-        "_usage_body",
-        "_word_bodies",
-        "_words",
-    )
+    __slots__ = ("_answer", "_finish_body", "_head", "_responder", "_usage_body", "_word_bodies")
 
-    def __init__(
-        self,
-        responder: Responder,
-        head: bytes,
-        word_bodies: tuple[bytes, ...],
-        words: list[int],
-        finish_body: bytes,
-        usage_body: bytes | None,
-    ) -> None:
+    def __init__(self, responder: Responder, answer: _Answer, model_json: bytes, include_usage: bool) -> None:
         self._responder = responder
-        self._head = head
-        self._word_bodies = word_bodies
-        self._words = words
-        self._finish_body = finish_body
-        self._usage_body = usage_body
+        self._answer = answer
+        # Everything up to the choices list is the same on every chunk of this answer.
+        self._head = b'data: {"id":"%b","object":"%b","created":%d,"model":%b,"choices":[' % (
+            answer.request_id.encode(),
+            (_CHAT_CHUNK_OBJECT if answer.chat else _COMPLETION_OBJECT).encode(),
+            answer.created,
+            model_json,
+        )
+        self._word_bodies = _CHAT_WORD_BODIES if answer.chat else _COMPLETION_WORD_BODIES
+        finish_bodies = _CHAT_FINISH_BODIES if answer.chat else _COMPLETION_FINISH_BODIES
+        self._finish_body = finish_bodies[answer.finish_reason]
+        self._usage_body = (
+            b'],"usage":%b,"mock_sent_ns":' % jsoncodec.dumps(answer.usage) if include_usage else None
+        )
+
+    def start(self) -> None:
+        """Send the head now; a chat answer also gets its role chunk (which is not a token)."""
+        first_chunk = (
+            self._head + _CHAT_ROLE_BODY + b"%d}\n\n" % perf_counter_ns() if self._answer.chat else b""
+        )
+        self._responder.start_stream(first_chunk=first_chunk)
 
     def on_token(self, sequence: Sequence) -> None:
         emitted = sequence.emitted
-        ns_tail = b"%d}\n\n" % time.perf_counter_ns()
+        ns_tail = b"%d}\n\n" % perf_counter_ns()
         head = self._head
-        content = head + self._word_bodies[self._words[emitted - 1]] + ns_tail
+        content = head + self._word_bodies[self._answer.words[emitted - 1]] + ns_tail
         if emitted < sequence.output_tokens:
             self._responder.write_chunk(content)
             return
@@ -215,15 +248,36 @@ class _StreamReply:
 class _BufferedReply:
     """Answers a non-streaming request once its sequence has its last token."""
 
-    __slots__ = ("_build", "_responder")
+    __slots__ = ("_answer", "_responder")
 
-    def __init__(self, responder: Responder, build: Callable[[], bytes]) -> None:
+    def __init__(self, responder: Responder, answer: _Answer) -> None:
         self._responder = responder
-        self._build = build
+        self._answer = answer
+
+    def start(self) -> None:
+        """Nothing to send before the whole answer is ready."""
 
     def on_token(self, sequence: Sequence) -> None:
         if sequence.finished:
-            self._responder.send(200, self._build())
+            self._responder.send(200, jsoncodec.dumps(self._body()))
+
+    def _body(self) -> dict[str, Any]:
+        answer = self._answer
+        text = "".join(VOCABULARY[index] + " " for index in answer.words)
+        choice: dict[str, Any] = {"index": 0}
+        if answer.chat:
+            choice["message"] = {"role": "assistant", "content": text}
+            choice["finish_reason"] = answer.finish_reason
+        else:
+            choice.update(text=text, finish_reason=answer.finish_reason, logprobs=None)
+        return {
+            "id": answer.request_id,
+            "object": "chat.completion" if answer.chat else _COMPLETION_OBJECT,
+            "created": answer.created,
+            "model": answer.model,
+            "choices": [choice],
+            "usage": answer.usage,
+        }
 
 
 class MockApp:
@@ -242,25 +296,19 @@ class MockApp:
             "/v1/models": {"GET": self._models},
             "/health": {"GET": self._health},
             "/mock/stats": {"GET": self._stats},
+            "/mock/stats/reset": {"POST": self._reset_timing_stats},
         }
 
     def __call__(self, request: Request, responder: Responder) -> None:
         methods = self._routes.get(request.path)
         if methods is None:
-            message = f"no route for {request.path}"
-            responder.send(
-                404, error_body(message, type_="invalid_request_error", param=None, code=None)
-            )
+            _send_error(responder, 404, f"no route for {request.path}")
             return
         handler = methods.get(request.method)
         if handler is None:
             allowed = ", ".join(sorted(methods))
             message = f"method {request.method} is not allowed on {request.path}; use {allowed}"
-            responder.send(
-                405,
-                error_body(message, type_="invalid_request_error", param=None, code=None),
-                headers=(("allow", allowed),),
-            )
+            _send_error(responder, 405, message, headers=(("allow", allowed),))
             return
         handler(request, responder)
 
@@ -274,7 +322,6 @@ class MockApp:
 
     def _generate(self, request: Request, responder: Responder, *, chat: bool) -> None:
         self.counters.requests_received += 1
-        config = self.config
         try:
             try:
                 document = jsoncodec.loads(request.body)
@@ -283,100 +330,47 @@ class MockApp:
             parsed = parse_chat_request(document) if chat else parse_completion_request(document)
         except InvalidRequest as exc:
             self.counters.requests_invalid += 1
-            responder.send(
-                400,
-                error_body(
-                    exc.message, type_="invalid_request_error", param=exc.param, code=exc.code
-                ),
-            )
+            _send_error(responder, 400, exc.message, param=exc.param, code=exc.code)
             return
+        answer = self._plan_answer(parsed, chat=chat)
+        reply = (
+            _StreamReply(responder, answer, self._model_json, parsed.include_usage)
+            if parsed.stream
+            else _BufferedReply(responder, answer)
+        )
+        try:
+            sequence = self.engine.submit(answer.prompt_tokens, answer.output_tokens, reply.on_token)
+        except AdmissionRejected as exc:
+            _send_error(responder, 400, exc.message, param=exc.param, code=exc.code)
+            return
+        # Words only for accepted requests (a huge max_tokens is rejected before this), and
+        # before the first step ends, which is the earliest a token can be delivered.
+        answer.words = choose_word_indices(
+            self.config.seed, parsed.prompt, parsed.max_tokens, answer.output_tokens
+        )
+        responder.on_abort = lambda: self.engine.cancel(sequence)
+        reply.start()
+
+    def _plan_answer(self, parsed: GenerationRequest, *, chat: bool) -> _Answer:
+        config = self.config
         prompt_tokens = count_tokens(parsed.prompt, config.tokens_per_word)
         if parsed.max_tokens is not None:
             output_tokens, finish_reason = parsed.max_tokens, "length"
         else:
             # Like a real server: the default answer stops at the end of the context window.
-            room = config.context_window - prompt_tokens
             # (No room at all: ask for one token and let the engine reject the request.)
+            room = config.context_window - prompt_tokens
             output_tokens = max(1, min(config.default_max_tokens, room))
             finish_reason = "stop" if output_tokens == config.default_max_tokens else "length"
-        words = choose_word_indices(config.seed, parsed.prompt, parsed.max_tokens, output_tokens)
-        request_id = f"{'chatcmpl' if chat else 'cmpl'}-mock{next(self._ids):010d}"
-        created = int(time.time())
-        usage = {
-            "prompt_tokens": prompt_tokens,
-            "completion_tokens": output_tokens,
-            "total_tokens": prompt_tokens + output_tokens,
-        }
-        reply: _StreamReply | _BufferedReply
-        role_chunk_prefix = b""
-        if parsed.stream:
-            head = b'data: {"id":"%b","object":"%b","created":%d,"model":%b,"choices":[' % (
-                request_id.encode(),
-                (_CHAT_CHUNK_OBJECT if chat else _COMPLETION_OBJECT).encode(),
-                created,
-                self._model_json,
-            )
-            if chat:
-                role_chunk_prefix = head + _CHAT_ROLE_BODY
-            finish_bodies = _CHAT_FINISH_BODIES if chat else _COMPLETION_FINISH_BODIES
-            usage_body = (
-                b'],"usage":%b,"mock_sent_ns":' % jsoncodec.dumps(usage)
-                if parsed.include_usage
-                else None
-            )
-            reply = _StreamReply(
-                responder,
-                head,
-                _CHAT_WORD_BODIES if chat else _COMPLETION_WORD_BODIES,
-                words,
-                finish_bodies[finish_reason],
-                usage_body,
-            )
-        else:
-
-            def build_body() -> bytes:
-                text = "".join(VOCABULARY[index] + " " for index in words)
-                choice: dict[str, Any] = (
-                    {
-                        "index": 0,
-                        "message": {"role": "assistant", "content": text},
-                        "finish_reason": finish_reason,
-                    }
-                    if chat
-                    else {
-                        "index": 0,
-                        "text": text,
-                        "finish_reason": finish_reason,
-                        "logprobs": None,
-                    }
-                )
-                return jsoncodec.dumps(
-                    {
-                        "id": request_id,
-                        "object": "chat.completion" if chat else _COMPLETION_OBJECT,
-                        "created": created,
-                        "model": config.model,
-                        "choices": [choice],
-                        "usage": usage,
-                    }
-                )
-
-            reply = _BufferedReply(responder, build_body)
-        try:
-            sequence = self.engine.submit(prompt_tokens, output_tokens, reply.on_token)
-        except AdmissionRejected as exc:
-            responder.send(
-                400,
-                error_body(
-                    exc.message, type_="invalid_request_error", param=exc.param, code=exc.code
-                ),
-            )
-            return
-        responder.on_abort = lambda: self.engine.cancel(sequence)
-        if parsed.stream:
-            # The role chunk goes out at once: the response starts when the request is queued.
-            first_chunk = role_chunk_prefix + b"%d}\n\n" % time.perf_counter_ns() if chat else b""
-            responder.start_stream(first_chunk=first_chunk)
+        return _Answer(
+            chat=chat,
+            request_id=f"{'chatcmpl' if chat else 'cmpl'}-mock{next(self._ids):010d}",
+            created=int(time.time()),
+            model=config.model,
+            prompt_tokens=prompt_tokens,
+            output_tokens=output_tokens,
+            finish_reason=finish_reason,
+        )
 
     # other routes
 
@@ -398,8 +392,18 @@ class MockApp:
         responder.send(200, b'{"status":"ok"}')
 
     def _stats(self, request: Request, responder: Responder) -> None:
+        responder.send(200, jsoncodec.dumps(self._stats_document()))
+
+    def _reset_timing_stats(self, request: Request, responder: Responder) -> None:
+        """Answer the stats so far, then restart the timing windows (counters stay cumulative)."""
+        body = jsoncodec.dumps(self._stats_document())
+        self.engine.pacing_error_us.clear()
+        self.engine.delivery_pass_us.clear()
+        responder.send(200, body)
+
+    def _stats_document(self) -> dict[str, Any]:
         engine = self.engine
-        document = stats_document(
+        return stats_document(
             http=self.counters,
             engine_counters=engine.counters,
             queue_length=engine.queue_length,
@@ -408,4 +412,3 @@ class MockApp:
             delivery_pass_us=engine.delivery_pass_us,
             engine_config=self.config.as_dict(),
         )
-        responder.send(200, jsoncodec.dumps(document))

@@ -63,8 +63,7 @@ def config_from_mapping(table: dict[str, Any], *, source: str = "<mapping>") -> 
     for key in table:
         if key not in fields:
             raise ConfigError(
-                f"unknown key {key!r} in engine config {source!r}; "
-                f"known keys: {', '.join(sorted(fields))}"
+                f"unknown key {key!r} in engine config {source!r}; known keys: {', '.join(sorted(fields))}"
             )
     values: dict[str, Any] = {}
     for key, value in table.items():
@@ -82,7 +81,6 @@ def _checked_value(key: str, value: Any, expected: type, source: str) -> Any:
         if expected is float and isinstance(value, int) and not isinstance(value, bool):
             return float(value)
         raise ConfigError(
-            f"key {key!r} in engine config {source!r} must be {expected.__name__}, "
-            f"not {type(value).__name__}"
+            f"key {key!r} in engine config {source!r} must be {expected.__name__}, not {type(value).__name__}"
         )
     return value

@@ -15,9 +15,10 @@ Performance model (the rules; ``scheduler.StepScheduler`` implements them, no cl
 - When nothing runs and nothing waits the engine sleeps until an arrival, then starts a
   step at once.
 - Steps follow absolute deadlines so timer jitter never accumulates: the next step starts
-  at the previous deadline, unless the loop is already more than one whole step late (then
-  it starts now). All tokens of a step are delivered in one pass right at the deadline; the
-  lateness of each pass (actual - deadline) is recorded as the pacing error.
+  at the previous deadline, unless the loop woke more than one whole step late (then it
+  starts now). All tokens of a step are delivered in one pass right at the deadline; the
+  lateness of each pass start (actual - deadline) is recorded as the pacing error, and
+  the pass's own duration (first to last write) separately.
 - A cancelled sequence (client gone) gets no more tokens and leaves at the next step start.
 
 ``ground_truth`` gives the closed-form steady state of this model for N closed-loop clients
@@ -37,8 +38,9 @@ from mock_server.scheduler import SchedulerCounters, Sequence, StepScheduler
 from mock_server.stats import SampleWindow
 
 _EARLY_WAKE_TOLERANCE_S = 100e-6
-"""Timer wake-ups earlier than this before the deadline are put back to sleep (libuv timers
-have millisecond granularity and may fire a fraction of a millisecond early)."""
+"""Timer wake-ups earlier than this before the deadline are put back to sleep. libuv timers
+have millisecond granularity and may fire a fraction of a millisecond early; the re-armed
+timer then fires on the next loop pass, so the wait ends as a short poll, never a drift."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -156,13 +158,18 @@ class Engine:
             return
         self._timer = None
         self.pacing_error_us.add(round((now - deadline) * 1e6))
-        self._scheduler.finish_step()
+        failures = self._scheduler.finish_step()
         finished_at = time.perf_counter()
+        for exc in failures:
+            self._loop.call_exception_handler({"message": "token delivery failed", "exception": exc})
         self.delivery_pass_us.add(round((finished_at - now) * 1e6))
         if self._closed or not self._scheduler.has_work():
             return
-        # Keep to the absolute schedule unless more than one whole step behind.
-        late_by = finished_at - deadline
+        # The next step starts at this deadline (absolute schedule, no drift) unless the
+        # loop woke more than one whole step late; then it starts now. A long delivery pass
+        # alone does not reset the schedule: the next timer is then due at once and the
+        # engine catches up, so steps per second hold while the passes fit on average.
+        late_by = now - deadline
         self._begin_step(deadline if late_by <= self._step_duration else finished_at)
 
 

@@ -24,12 +24,10 @@ MAX_BODY_BYTES = 16 * 1024 * 1024
 
 _LAST_CHUNK = b"0\r\n\r\n"
 _ERROR_400 = (
-    b'{"error":{"message":"malformed HTTP request",'
-    b'"type":"invalid_request_error","param":null,"code":null}}'
+    b'{"error":{"message":"malformed HTTP request","type":"invalid_request_error","param":null,"code":null}}'
 )
 _ERROR_413 = (
-    b'{"error":{"message":"request body too large",'
-    b'"type":"invalid_request_error","param":null,"code":null}}'
+    b'{"error":{"message":"request body too large","type":"invalid_request_error","param":null,"code":null}}'
 )
 
 
@@ -41,9 +39,7 @@ def _status_line(status: int) -> bytes:
     return f"HTTP/1.1 {status} {phrase}\r\n".encode("latin-1")
 
 
-_STATUS_LINES: dict[int, bytes] = {
-    status.value: _status_line(status.value) for status in HTTPStatus
-}
+_STATUS_LINES: dict[int, bytes] = {status.value: _status_line(status.value) for status in HTTPStatus}
 
 
 @dataclass(slots=True)
@@ -77,10 +73,6 @@ class Responder:
         self._started = False
         self.done = False
         self.on_abort: Callable[[], None] | None = None
-
-    @property
-    def connection_lost(self) -> bool:
-        return self._connection.lost
 
     def send(
         self,
@@ -122,8 +114,10 @@ class Responder:
 
     def write_chunk(self, payload: bytes) -> None:
         """Send one non-empty chunk of a streamed response."""
-        if not self.done:
-            self._connection.write(b"%x\r\n%b\r\n" % (len(payload), payload))
+        # The hot path (one call per token): straight to the transport, no further calls.
+        transport = self._connection.transport
+        if not self.done and transport is not None and not transport.is_closing():
+            transport.write(b"%x\r\n%b\r\n" % (len(payload), payload))
 
     def end_stream(self, payload: bytes = b"") -> None:
         """Send a last data chunk (optional) and the terminating chunk in one write."""
@@ -145,9 +139,7 @@ class Responder:
         status_line = _STATUS_LINES.get(status) or _status_line(status)
         lines = [f"content-type: {content_type}\r\n", framing]
         lines.extend(f"{name}: {value}\r\n" for name, value in headers)
-        lines.append(
-            "connection: keep-alive\r\n\r\n" if self._keep_alive else "connection: close\r\n\r\n"
-        )
+        lines.append("connection: keep-alive\r\n\r\n" if self._keep_alive else "connection: close\r\n\r\n")
         return status_line + "".join(lines).encode("latin-1")
 
     def _finish(self) -> None:
@@ -167,7 +159,7 @@ class HttpConnection(asyncio.Protocol):
     def __init__(self, handler: Handler, connections: set[HttpConnection]) -> None:
         self._handler = handler
         self._connections = connections
-        self._transport: asyncio.Transport | None = None
+        self.transport: asyncio.Transport | None = None
         self._parser = httptools.HttpRequestParser(self)
         self._url = bytearray()
         self._headers: dict[str, str] = {}
@@ -181,11 +173,11 @@ class HttpConnection(asyncio.Protocol):
 
     def connection_made(self, transport: asyncio.BaseTransport) -> None:
         # uvloop's transports implement the interface without subclassing asyncio.Transport.
-        self._transport = cast(asyncio.Transport, transport)
+        self.transport = cast(asyncio.Transport, transport)
         self._connections.add(self)
 
     def data_received(self, data: bytes) -> None:
-        if self._transport is None or self._transport.is_closing():
+        if self.transport is None or self.transport.is_closing():
             return
         try:
             self._parser.feed_data(data)
@@ -250,7 +242,7 @@ class HttpConnection(asyncio.Protocol):
     # used by Responder
 
     def write(self, data: bytes) -> None:
-        transport = self._transport
+        transport = self.transport
         if transport is not None and not transport.is_closing():
             transport.write(data)
 
@@ -262,8 +254,8 @@ class HttpConnection(asyncio.Protocol):
             self._dispatch(self._pending.popleft())
 
     def close(self) -> None:
-        if self._transport is not None and not self._transport.is_closing():
-            self._transport.close()
+        if self.transport is not None and not self.transport.is_closing():
+            self.transport.close()
 
     def _dispatch(self, request: Request) -> None:
         responder = Responder(self, request.keep_alive)
@@ -273,7 +265,7 @@ class HttpConnection(asyncio.Protocol):
     def _reject(self, status: int, body: bytes) -> None:
         """Answer a request we cannot parse or accept, then close the connection."""
         self._pending.clear()
-        if self._current is None and self._transport is not None and not self.lost:
+        if self._current is None and self.transport is not None and not self.lost:
             responder = Responder(self, keep_alive=False)
             self._current = responder
             responder.send(status, body)
@@ -308,7 +300,9 @@ class HttpServer:
         if self._server is None:
             return
         self._server.close()
+        # Abort, not close: a client that stopped reading must not hold up the shutdown.
         for connection in list(self._connections):
-            connection.close()
+            if connection.transport is not None:
+                connection.transport.abort()
         await self._server.wait_closed()
         self._server = None

@@ -153,9 +153,7 @@ def start_subprocess(
         if process.stdout is not None:
             process.stdout.close()
         stderr_file.close()
-        raise MockStartError(
-            f"{exc}; exit code {process.returncode}; stderr: {tail or '(empty)'}"
-        ) from None
+        raise MockStartError(f"{exc}; exit code {process.returncode}; stderr: {tail or '(empty)'}") from None
     if not line.startswith(READY_PREFIX):
         RunningMock(process, "", stderr_file).stop()
         raise MockStartError(f"unexpected first line from mock_server: {line!r}")

@@ -47,9 +47,7 @@ class Sequence:
 
     __slots__ = ("cancelled", "emitted", "on_token", "output_tokens", "prompt_tokens")
 
-    def __init__(
-        self, prompt_tokens: int, output_tokens: int, on_token: Callable[[Sequence], None]
-    ) -> None:
+    def __init__(self, prompt_tokens: int, output_tokens: int, on_token: Callable[[Sequence], None]) -> None:
         self.prompt_tokens = prompt_tokens
         self.output_tokens = output_tokens
         self.on_token = on_token
@@ -120,9 +118,7 @@ class StepScheduler:
         self.counters.submitted += 1
         if output_tokens < 1:
             self.counters.rejected += 1
-            raise AdmissionRejected(
-                "max_tokens must be at least 1", code="invalid_value", param="max_tokens"
-            )
+            raise AdmissionRejected("max_tokens must be at least 1", code="invalid_value", param="max_tokens")
         total = prompt_tokens + output_tokens
         if total > self._context_window:
             self.counters.rejected += 1
@@ -173,14 +169,17 @@ class StepScheduler:
         if len(running) > counters.max_running_seen:
             counters.max_running_seen = len(running)
         return (
-            self._per_prompt_token_s * admitted_prompt_tokens
-            + self._base_s
-            + self._per_seq_s * len(running)
+            self._per_prompt_token_s * admitted_prompt_tokens + self._base_s + self._per_seq_s * len(running)
         )
 
-    def finish_step(self) -> None:
-        """Give every running sequence its next token; finished ones leave the batch."""
+    def finish_step(self) -> list[Exception]:
+        """Give every running sequence its next token; finished ones leave the batch.
+
+        Returns the exceptions raised by ``on_token`` callbacks (normally none): a failing
+        callback cancels its own sequence and never stops the rest of the batch.
+        """
         still_running: list[Sequence] = []
+        failures: list[Exception] = []
         emitted = 0
         for sequence in self._running:
             if sequence.cancelled:
@@ -189,7 +188,14 @@ class StepScheduler:
                 continue
             sequence.emitted += 1
             emitted += 1
-            sequence.on_token(sequence)
+            try:
+                sequence.on_token(sequence)
+            except Exception as exc:
+                failures.append(exc)
+                sequence.cancelled = True
+                self._cancel_pending += 1
+                still_running.append(sequence)
+                continue
             if sequence.emitted < sequence.output_tokens:
                 still_running.append(sequence)
             else:
@@ -197,6 +203,7 @@ class StepScheduler:
                 self.counters.completed += 1
         self._running = still_running
         self.counters.tokens_emitted += emitted
+        return failures
 
     def _drop_cancelled(self) -> None:
         kept_running: list[Sequence] = []

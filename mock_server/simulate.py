@@ -62,9 +62,7 @@ def simulate_closed_loop(
     if think_s <= 0:
         raise ValueError("think_s must be > 0 so an arrival never ties with a step boundary")
     spread = (
-        start_spread_s
-        if start_spread_s is not None
-        else config.step_base_ms / 1000.0 * (output_tokens + 1)
+        start_spread_s if start_spread_s is not None else config.step_base_ms / 1000.0 * (output_tokens + 1)
     )
     scheduler = StepScheduler(config)
     arrivals: list[tuple[float, int, int]] = []  # (time, tie-breaker, client)
@@ -119,7 +117,9 @@ def simulate_closed_loop(
             at, _, client = heapq.heappop(arrivals)
             submit(client, at)
         now = end
-        scheduler.finish_step()
+        failures = scheduler.finish_step()
+        if failures:
+            raise failures[0]
         if now >= horizon_s:
             break
 

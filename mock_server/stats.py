@@ -30,6 +30,13 @@ class SampleWindow:
         self.count = 0
         self.max_seen: int | None = None
 
+    def clear(self) -> None:
+        """Forget every sample (count and max too), e.g. at the start of a measurement window."""
+        self._samples = array("q")
+        self._next = 0
+        self.count = 0
+        self.max_seen = None
+
     def add(self, value: int) -> None:
         if len(self._samples) < self._capacity:
             self._samples.append(value)

@@ -63,6 +63,4 @@ def choose_word_indices(seed: int, prompt: str, max_tokens: int | None, count: i
 
 def generate_text(seed: int, prompt: str, max_tokens: int | None, count: int) -> str:
     """Return the ``count``-token answer for a request: each token is one word and a space."""
-    return "".join(
-        VOCABULARY[index] + " " for index in choose_word_indices(seed, prompt, max_tokens, count)
-    )
+    return "".join(VOCABULARY[index] + " " for index in choose_word_indices(seed, prompt, max_tokens, count))

@@ -5,6 +5,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
+from rich import box
 from rich.console import Console
 from rich.table import Table
 
@@ -117,9 +118,194 @@ def render_calibration(rows: Sequence[dict[str, Any]], verdict: str, out: Consol
     out.print(verdict)
 
 
+_VERDICT_STYLES = {
+    "pass": ("PASS", "bold green"),
+    "regression": ("REGRESSION", "bold red"),
+    "invalid": ("INVALID RUN", "bold yellow"),
+    "no_baseline": ("NO BASELINE YET", "bold cyan"),
+}
+
+
+def render_gate(report: dict[str, Any], out: Console | None = None) -> None:
+    """A gate's verdict: one headline, the rules against the baseline, the reasons."""
+    out = out or console()
+    word, style = _VERDICT_STYLES.get(report["verdict"], (report["verdict"], "bold"))
+    out.print(
+        f"[{style}]{word}[/]  {report['target']} / {report['profile']} ({report['profile_hash']}), "
+        f"exit code {report['exit_code']}"
+    )
+    baseline = report.get("baseline") or {}
+    if baseline.get("kind"):
+        ids = ", ".join(str(i) for i in baseline.get("run_ids", []))
+        out.print(f"baseline    {baseline['kind']} (runs {ids})", markup=False)
+    compared = [rule for rule in report.get("rules", []) if "ratio" in rule]
+    if compared:
+        confidence = f"{report.get('confidence', 0.95):.0%}"
+        table = Table(show_edge=False, pad_edge=False)
+        columns = ("rule", "now ms", "baseline ms", "ratio", f"{confidence} interval", "rise ms", "result")
+        for column in columns:
+            table.add_column(column, justify="left" if column == "rule" else "right", no_wrap=True)
+        for rule in compared:
+            low, high = rule["ratio_interval"]
+            table.add_row(
+                rule["rule"],
+                _fmt(rule["current_ms"]),
+                _fmt(rule["baseline_ms"]),
+                f"x{rule['ratio']:.3f}",
+                f"x{low:.3f}..x{high:.3f}",
+                f"{rule['rise_ms']:+.2f}",
+                "[red]regressed[/]" if rule["regressed"] else "ok",
+            )
+        out.print(table)
+    for rule in report.get("rules", []):
+        if "ratio" not in rule and rule.get("note") and report["verdict"] in ("pass", "regression"):
+            out.print(f"{rule['rule']}: {rule['note']}", markup=False)
+    for reason in report.get("reasons", []):
+        out.print(f"  {reason}", markup=False)
+    measured = report.get("measured") or {}
+    if measured.get("requests") is not None:
+        out.print(
+            f"requests    {measured['requests']} measured, {measured.get('failed') or 0} failed, "
+            f"window {measured.get('window_s') or 0:.1f} s",
+            markup=False,
+        )
+    if report.get("run_id") is not None:
+        out.print(f"history     run {report['run_id']} in {report.get('history')}", markup=False)
+    if report.get("run_folder"):
+        out.print(f"run folder  {report['run_folder']}", markup=False)
+    for page in report.get("pages", []):
+        out.print(f"report      {page}", markup=False)
+
+
+def render_history(rows: Sequence[dict[str, Any]], out: Console | None = None) -> None:
+    """A listing of stored runs, oldest first (``HistoryRun.brief()`` rows)."""
+    out = out or console()
+    if not rows:
+        out.print("no runs match")
+        return
+    table = Table(box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False)
+    columns = ("id", "started", "target", "profile", "hash", "c", "req", "fail")
+    for column in (*columns, "ttft p95", "e2e p95", "verdict"):
+        left = column in ("started", "target", "profile", "verdict")
+        table.add_column(column, justify="left" if left else "right", no_wrap=column != "target")
+    for row in rows:
+        verdict = row.get("verdict") or "-"
+        if row.get("pinned"):
+            verdict += " (pinned)"
+        table.add_row(
+            str(row["id"]),
+            row["started_at"][:16].replace("T", " "),
+            row["target"],
+            row["profile"],
+            row["profile_hash"][:6],
+            _fmt(row.get("concurrency")),
+            _fmt(row.get("measured")),
+            _fmt(row.get("failed")),
+            _fmt(row.get("ttft_p95_ms")),
+            _fmt(row.get("e2e_p95_ms")),
+            f"[red]{verdict}[/]" if verdict.startswith("regression") else verdict,
+        )
+    out.print(table)
+    out.print("latency percentiles in ms; hash: the profile and load, as the gate matches them", style="dim")
+
+
+_SPARKS = "▁▂▃▄▅▆▇█"
+
+
+def render_trend(labels: Sequence[str], rows: Sequence[dict[str, Any]], out: Console | None = None) -> None:
+    """Chosen percentiles per run, oldest first, with one sparkline per percentile."""
+    out = out or console()
+    if not rows:
+        out.print("no runs match")
+        return
+    for label in labels:
+        values = [row["values_ms"].get(label) for row in rows]
+        known = [value for value in values if value is not None]
+        low, high = (min(known), max(known)) if known else (0.0, 0.0)
+        out.print(f"{label:<12} {_spark(values, low, high)}  {_fmt(low)}..{_fmt(high)} ms", markup=False)
+    table = Table(show_edge=False, pad_edge=False)
+    for column in ("id", "started", *labels, "verdict"):
+        table.add_column(column, justify="left" if column == "started" else "right")
+    for row in rows:
+        table.add_row(
+            str(row["id"]),
+            row["started_at"],
+            *(_fmt(row["values_ms"].get(label)) for label in labels),
+            row.get("verdict") or "-",
+        )
+    out.print(table)
+
+
+def _spark(values: Sequence[float | None], low: float, high: float) -> str:
+    marks = []
+    for value in values:
+        if value is None:
+            marks.append(" ")
+        elif high <= low:
+            marks.append(_SPARKS[0])
+        else:
+            marks.append(_SPARKS[min(len(_SPARKS) - 1, int((value - low) / (high - low) * len(_SPARKS)))])
+    return "".join(marks)
+
+
 def _fmt(value: Any) -> str:
     if value is None:
         return "-"
     if isinstance(value, float):
         return f"{value:.3f}" if value < 10 else f"{value:.1f}"
     return str(value)
+
+
+_VERDICT_COLORS = {"faster": "green", "slower": "red", "no difference": "dim", "mixed": "yellow"}
+
+
+def render_comparison(data: dict[str, Any], out: Console | None = None) -> None:
+    """A comparison: per load level the targets side by side, then one verdict per pair."""
+    out = out or console()
+    profile = data.get("profile", {}).get("name", "workload")
+    out.print(
+        f"[bold]{profile}[/] on {len(data.get('targets', []))} targets, {data['settings']['rounds']} rounds"
+    )
+    for level in data.get("levels", []):
+        table = Table(
+            title=f"concurrency {level['concurrency']} (latency in ms)", title_justify="left", show_edge=False
+        )
+        for column in ("target", "requests", "ttft p50", "ttft p90", "itl p50", "e2e p50", "e2e p90"):
+            table.add_column(column, justify="left" if column == "target" else "right", no_wrap=True)
+        for column in ("req/s", "failed", "tokens/answer", "per 1,000 req"):
+            table.add_column(column, justify="right", no_wrap=True)
+        for name, agg in level["targets"].items():
+            latency = agg.get("latency", {})
+            cost = agg.get("cost")
+            share = agg["requests"].get("error_share")
+            table.add_row(
+                name,
+                str(agg["requests"]["measured"]),
+                _fmt(latency.get("ttft", {}).get("p50_ms")),
+                _fmt(latency.get("ttft", {}).get("p90_ms")),
+                _fmt(latency.get("itl", {}).get("p50_ms")),
+                _fmt(latency.get("e2e", {}).get("p50_ms")),
+                _fmt(latency.get("e2e", {}).get("p90_ms")),
+                _fmt(agg["throughput"]["requests_per_s"]),
+                f"{share:.1%}" if share is not None else "-",
+                _fmt(agg["tokens"].get("output_mean")),
+                f"{cost['per_1000_requests']:.4f} {cost['currency']}"
+                if cost and cost.get("per_1000_requests") is not None
+                else "-",
+            )
+        out.print(table)
+        for pair in level.get("pairs", []):
+            color = _VERDICT_COLORS.get(pair["verdict"], "bold")
+            out.print(f"  [{color}]{pair['verdict']:>13}[/]  {pair['sentence']}", highlight=False)
+            undecided = [m for m in pair["metrics"] if m["verdict"] == "no difference" and m["more_requests"]]
+            if undecided and pair["verdict"] != "no difference":
+                continue
+            for metric in undecided[:3]:
+                ratio = f"{metric['ratio']:.3f} ({metric['ratio_low']:.3f}-{metric['ratio_high']:.3f})"
+                out.print(
+                    f"{'':17}{metric['metric']} p{metric['percentile']:g}: ratio {ratio}; about "
+                    f"{metric['more_requests']:,} more requests per target would tell",
+                    markup=False,
+                )
+    for caution in data.get("cautions", [])[1:]:
+        out.print(f"[yellow]caution[/] {caution}", highlight=False)

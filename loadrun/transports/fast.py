@@ -1,16 +1,25 @@
-"""The load hot path: an asyncio Protocol client on httptools (llhttp).
+"""The load hot path: an HTTP/1.1 client on httptools (llhttp) over asyncio.
 
 Measured on a 2-core machine, httpx's pool work grows with the square of the connection
-count, so at hundreds of streams it cannot time chunks honestly; this transport keeps one
-keep-alive connection per in-flight request, parses HTTP with llhttp (never by hand),
-takes TLS from the standard library, and stamps each read with ``perf_counter_ns()`` the
-moment the bytes arrive.
+count, so at hundreds of streams it cannot time chunks honestly. This transport keeps one
+keep-alive connection per in-flight request and parses HTTP with llhttp (never by hand).
+
+Receive times: a batching server writes the tokens of one step to every stream at once,
+so a client reading hundreds of sockets reaches the last of them milliseconds after its
+bytes arrived; a timestamp taken in the read callback would carry that delay. On Linux,
+plain-TCP connections therefore ask the kernel to stamp each read (SO_TIMESTAMPNS) and use
+that arrival time; TLS connections (stdlib ssl through an asyncio Protocol) and other
+platforms stamp with ``perf_counter_ns()`` in the read callback.
 """
 
 from __future__ import annotations
 
 import asyncio
+import socket
 import ssl
+import struct
+import sys
+import time
 from time import perf_counter_ns
 from typing import cast
 
@@ -18,6 +27,12 @@ import httptools
 
 from loadrun.errors import RequestFailed
 from loadrun.transports.base import Endpoint, HttpRequest, ResponseConsumer
+
+_SO_TIMESTAMPNS = getattr(socket, "SO_TIMESTAMPNS", 35)
+KERNEL_STAMPS_AVAILABLE = sys.platform.startswith("linux")
+_READ_SIZE = 256 * 1024
+_STAMP = struct.Struct("qq")
+_CLOCK_REFRESH_NS = 1_000_000_000
 
 
 def render_request(request: HttpRequest) -> bytes:
@@ -32,12 +47,40 @@ def render_request(request: HttpRequest) -> bytes:
     return ("\r\n".join(lines) + "\r\n\r\n").encode("latin-1") + request.body
 
 
-class _Connection(asyncio.Protocol):
-    """One HTTP/1.1 connection; serves one exchange at a time."""
+class KernelClock:
+    """Maps the kernel's receive stamps (CLOCK_REALTIME) onto perf_counter_ns (monotonic).
+
+    The offset between the two clocks is re-measured every second, so a clock slew during
+    a long run does not accumulate into the latencies.
+    """
+
+    def __init__(self) -> None:
+        self._offset = 0
+        self._measured_at = 0
+        self.refresh()
+
+    def refresh(self) -> None:
+        best_width = None
+        for _ in range(5):
+            before = perf_counter_ns()
+            wall = time.time_ns()
+            after = perf_counter_ns()
+            if best_width is None or after - before < best_width:
+                best_width = after - before
+                self._offset = wall - (before + after) // 2
+                self._measured_at = after
+
+    def to_monotonic(self, realtime_ns: int, now_ns: int) -> int:
+        if now_ns - self._measured_at > _CLOCK_REFRESH_NS:
+            self.refresh()
+        return realtime_ns - self._offset
+
+
+class _Connection:
+    """One HTTP/1.1 connection's exchange state and llhttp callbacks; subclasses do the I/O."""
 
     def __init__(self) -> None:
         self._parser = httptools.HttpResponseParser(self)
-        self._transport: asyncio.Transport | None = None
         self._consumer: ResponseConsumer | None = None
         self._waiter: asyncio.Future[None] | None = None
         self._headers: list[tuple[bytes, bytes]] = []
@@ -46,13 +89,16 @@ class _Connection(asyncio.Protocol):
         self.closed = False
         self.reusable = False
 
-    # asyncio.Protocol
-    def connection_made(self, transport: asyncio.BaseTransport) -> None:
-        # uvloop's transports are not asyncio.Transport subclasses, so no isinstance check.
-        self._transport = cast(asyncio.Transport, transport)
+    # I/O, supplied by subclasses
+    def _write(self, data: bytes) -> None:
+        raise NotImplementedError
 
-    def data_received(self, data: bytes) -> None:
-        self._ts = perf_counter_ns()
+    def close(self) -> None:
+        raise NotImplementedError
+
+    # bytes in
+    def _feed(self, data: bytes, ts: int) -> None:
+        self._ts = ts
         if self._waiter is None:
             # Bytes nobody asked for: the connection cannot be trusted for reuse.
             self.close()
@@ -63,7 +109,7 @@ class _Connection(asyncio.Protocol):
             self._fail(RequestFailed("protocol_error", f"malformed HTTP response: {exc}"))
             self.close()
 
-    def connection_lost(self, exc: Exception | None) -> None:
+    def _lost(self, exc: BaseException | None) -> None:
         self.closed = True
         self.reusable = False
         if self._waiter is None or self._waiter.done():
@@ -101,7 +147,8 @@ class _Connection(asyncio.Protocol):
 
     # exchange
     async def exchange(self, raw: bytes, consumer: ResponseConsumer) -> None:
-        assert self._transport is not None
+        if self.closed:
+            raise RequestFailed("connection_error", "connection closed before the request was sent")
         self._consumer = consumer
         self._headers = []
         self._headers_done = False
@@ -109,17 +156,11 @@ class _Connection(asyncio.Protocol):
         waiter = asyncio.get_running_loop().create_future()
         self._waiter = waiter
         try:
-            self._transport.write(raw)
+            self._write(raw)
             await waiter
         finally:
             self._waiter = None
             self._consumer = None
-
-    def close(self) -> None:
-        self.reusable = False
-        if self._transport is not None and not self.closed:
-            self._transport.close()
-        self.closed = True
 
     def _fail(self, exc: RequestFailed) -> None:
         if self._waiter is not None and not self._waiter.done():
@@ -134,15 +175,116 @@ class _Connection(asyncio.Protocol):
         return True
 
 
+class _ProtocolConnection(_Connection, asyncio.Protocol):
+    """Reads through an asyncio transport (used for TLS); stamps reads in the callback."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._transport: asyncio.Transport | None = None
+
+    def connection_made(self, transport: asyncio.BaseTransport) -> None:
+        # uvloop's transports are not asyncio.Transport subclasses, so no isinstance check.
+        self._transport = cast(asyncio.Transport, transport)
+
+    def data_received(self, data: bytes) -> None:
+        self._feed(data, perf_counter_ns())
+
+    def connection_lost(self, exc: Exception | None) -> None:
+        self._lost(exc)
+
+    def _write(self, data: bytes) -> None:
+        assert self._transport is not None
+        self._transport.write(data)
+
+    def close(self) -> None:
+        self.reusable = False
+        if self._transport is not None and not self.closed:
+            self._transport.close()
+        self.closed = True
+
+
+class _StampedSocketConnection(_Connection):
+    """Reads a plain TCP socket with recvmsg and uses the kernel's arrival stamp."""
+
+    def __init__(self, sock: socket.socket, loop: asyncio.AbstractEventLoop, clock: KernelClock) -> None:
+        super().__init__()
+        self._sock = sock
+        self._loop = loop
+        self._clock = clock
+        self._fd = sock.fileno()
+        loop.add_reader(self._fd, self._on_readable)
+
+    def _on_readable(self) -> None:
+        try:
+            data, ancillary, _flags, _address = self._sock.recvmsg(_READ_SIZE, 64)
+        except (BlockingIOError, InterruptedError):
+            return
+        except OSError as exc:
+            self._shut()
+            self._lost(exc)
+            return
+        now = perf_counter_ns()
+        if not data:
+            self._shut()
+            self._lost(None)
+            return
+        ts = now
+        for level, kind, payload in ancillary:
+            if level == socket.SOL_SOCKET and kind == _SO_TIMESTAMPNS and len(payload) >= 16:
+                seconds, nanoseconds = _STAMP.unpack_from(payload)
+                stamped = self._clock.to_monotonic(seconds * 1_000_000_000 + nanoseconds, now)
+                if 0 <= now - stamped < 10_000_000_000:  # ignore a stamp across a clock jump
+                    ts = stamped
+        self._feed(data, ts)
+
+    def _write(self, data: bytes) -> None:
+        try:
+            sent = self._sock.send(data)
+        except (BlockingIOError, InterruptedError):
+            sent = 0
+        except OSError as exc:
+            self._shut()
+            self._lost(exc)
+            return
+        if sent < len(data):
+            # Rare (a request larger than the socket buffer): finish it in the background.
+            task = self._loop.create_task(self._send_rest(data[sent:]))
+            task.add_done_callback(lambda done: done.exception() if not done.cancelled() else None)
+
+    async def _send_rest(self, rest: bytes) -> None:
+        try:
+            await self._loop.sock_sendall(self._sock, rest)
+        except OSError as exc:
+            self._shut()
+            self._lost(exc)
+
+    def _shut(self) -> None:
+        if not self.closed:
+            self._loop.remove_reader(self._fd)
+            self._sock.close()
+        self.closed = True
+        self.reusable = False
+
+    def close(self) -> None:
+        self._shut()
+
+
 class FastTransport:
     """Keep-alive connections, one per in-flight request, reused when the server allows."""
 
-    def __init__(self, *, connect_timeout_s: float = 10.0, verify_tls: bool = True) -> None:
+    def __init__(
+        self, *, connect_timeout_s: float = 10.0, verify_tls: bool = True, kernel_stamps: bool = True
+    ) -> None:
         self._connect_timeout_s = connect_timeout_s
         self._ssl: ssl.SSLContext | None = None
         self._verify_tls = verify_tls
         self._idle: dict[Endpoint, list[_Connection]] = {}
-        self._raw_cache: dict[int, bytes] = {}
+        self._kernel_stamps = kernel_stamps and KERNEL_STAMPS_AVAILABLE
+        self._clock = KernelClock() if self._kernel_stamps else None
+
+    def receive_clock(self, endpoint: Endpoint) -> str:
+        """Where receive times for this endpoint come from: "kernel" or "application"."""
+        return "kernel" if self._kernel_stamps and not endpoint.tls else "application"
 
     async def send(self, request: HttpRequest, consumer: ResponseConsumer) -> None:
         connection = self._take_idle(request.endpoint)
@@ -173,17 +315,11 @@ class FastTransport:
         return None
 
     async def _connect(self, endpoint: Endpoint) -> _Connection:
-        loop = asyncio.get_running_loop()
-        ssl_context = self._ssl_context() if endpoint.tls else None
         try:
             async with asyncio.timeout(self._connect_timeout_s):
-                _, protocol = await loop.create_connection(
-                    _Connection,
-                    endpoint.host,
-                    endpoint.port,
-                    ssl=ssl_context,
-                    server_hostname=endpoint.host if ssl_context else None,
-                )
+                if endpoint.tls or self._clock is None:
+                    return await self._connect_protocol(endpoint)
+                return await self._connect_socket(endpoint, self._clock)
         except TimeoutError as exc:
             raise RequestFailed(
                 "timeout_connect", f"connect timed out after {self._connect_timeout_s:g} s"
@@ -193,7 +329,39 @@ class FastTransport:
                 "connection_error",
                 f"cannot connect to {endpoint.host}:{endpoint.port}: {exc.strerror or exc}",
             ) from exc
+
+    async def _connect_protocol(self, endpoint: Endpoint) -> _Connection:
+        loop = asyncio.get_running_loop()
+        ssl_context = self._ssl_context() if endpoint.tls else None
+        _, protocol = await loop.create_connection(
+            _ProtocolConnection,
+            endpoint.host,
+            endpoint.port,
+            ssl=ssl_context,
+            server_hostname=endpoint.host if ssl_context else None,
+        )
         return protocol
+
+    async def _connect_socket(self, endpoint: Endpoint, clock: KernelClock) -> _Connection:
+        loop = asyncio.get_running_loop()
+        addresses = await loop.getaddrinfo(endpoint.host, endpoint.port, type=socket.SOCK_STREAM)
+        last_error: OSError | None = None
+        for family, kind, proto, _name, address in addresses:
+            sock = socket.socket(family, kind, proto)
+            try:
+                sock.setblocking(False)
+                sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+                sock.setsockopt(socket.SOL_SOCKET, _SO_TIMESTAMPNS, 1)
+                await loop.sock_connect(sock, address)
+            except OSError as exc:
+                sock.close()
+                last_error = exc
+                continue
+            except BaseException:
+                sock.close()
+                raise
+            return _StampedSocketConnection(sock, loop, clock)
+        raise last_error or OSError(f"no address for {endpoint.host}")
 
     def _ssl_context(self) -> ssl.SSLContext:
         if self._ssl is None:

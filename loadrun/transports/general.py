@@ -11,7 +11,7 @@ from time import perf_counter_ns
 import httpx
 
 from loadrun.errors import RequestFailed
-from loadrun.transports.base import HttpRequest, ResponseConsumer
+from loadrun.transports.base import Endpoint, HttpRequest, ResponseConsumer
 
 # httpx exception -> outcome. Order matters: subclasses before their bases.
 _FAILURES: tuple[tuple[type[Exception], str], ...] = (
@@ -69,6 +69,9 @@ class HttpxTransport:
                 consumer.on_end(perf_counter_ns())
         except httpx.HTTPError as exc:
             raise RequestFailed(failure_outcome(exc), f"{type(exc).__name__}: {exc}") from exc
+
+    def receive_clock(self, endpoint: Endpoint) -> str:
+        return "application"
 
     async def aclose(self) -> None:
         if self._owns_client:

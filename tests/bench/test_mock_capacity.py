@@ -10,7 +10,9 @@ counts events and bytes, and re-sends on the same connection when a response end
 also reads the last ``mock_sent_ns`` of each read to measure its own receive delay.
 
 Opt-in: ``pytest -m bench -s tests/bench/test_mock_capacity.py``. Figures are printed,
-never asserted on timing.
+never asserted on timing. ``MOCK_BENCH_STREAMS=1000`` picks the levels (comma-separated),
+``MOCK_BENCH_LOOP=asyncio`` runs the server on the stdlib event loop instead of uvloop.
+The server's pacing figures cover the measurement window only (reset at its start).
 """
 
 from __future__ import annotations
@@ -126,6 +128,7 @@ async def _drive(host: str, port: int, streams: int) -> dict[str, Any]:
     await asyncio.sleep(MEASURE_S)
     shared.measuring = False
     window_s = time.monotonic() - window_start
+    print("window-end", flush=True)
     # Let the last responses finish (each stream stops at its next response end).
     drain_deadline = time.monotonic() + MAX_TOKENS / 50 + 5.0
     while shared.closed < streams and time.monotonic() < drain_deadline:
@@ -174,6 +177,14 @@ def _cpu_seconds(pid: int) -> float:
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
+def _machine_busy_seconds() -> float:
+    """CPU seconds spent by everything on the machine (all cores), from /proc/stat."""
+    with open("/proc/stat") as stat:
+        fields = stat.readline().split()[1:]
+    user, nice, system, _idle, _iowait, irq, softirq, steal = (int(f) for f in fields[:8])
+    return (user + nice + system + irq + softirq + steal) / os.sysconf("SC_CLK_TCK")
+
+
 def _measure(streams: int) -> dict[str, Any]:
     extra = ("--event-loop", os.environ["MOCK_BENCH_LOOP"]) if "MOCK_BENCH_LOOP" in os.environ else ()
     with start_subprocess("wide", extra_args=extra) as mock:
@@ -188,41 +199,56 @@ def _measure(streams: int) -> dict[str, Any]:
                 assert client.stdout is not None
                 first = client.stdout.readline().strip()
                 assert first == "window-start", first
-                stats_start = _fetch_stats(mock.url)
+                # Restart the server's timing windows: ramp and warm-up are left out.
+                stats_start = _fetch_stats(mock.url, reset=True)
                 cpu_start, wall_start = _cpu_seconds(mock.pid), time.monotonic()
                 client_cpu_start = _cpu_seconds(client.pid)
-                result_line = client.stdout.readline()
+                machine_start = _machine_busy_seconds()
+                second = client.stdout.readline().strip()
+                assert second == "window-end", second
                 cpu_end, wall_end = _cpu_seconds(mock.pid), time.monotonic()
                 client_cpu_end = _cpu_seconds(client.pid)
+                machine_end = _machine_busy_seconds()
                 stats_end = _fetch_stats(mock.url)
+                result_line = client.stdout.readline()
                 assert client.wait(timeout=60) == 0
             finally:
                 if client.poll() is None:
                     os.kill(client.pid, 9)
                     client.wait()
-        stats = _fetch_stats(mock.url)
     result: dict[str, Any] = json.loads(result_line)
     wall_s = wall_end - wall_start
     result["server_cpu_fraction"] = (cpu_end - cpu_start) / wall_s
     result["client_cpu_fraction"] = (client_cpu_end - client_cpu_start) / wall_s
+    # Whatever else ran on the machine meanwhile (other work competes for the same cores).
+    result["other_cpu_fraction"] = (
+        (machine_end - machine_start) - (cpu_end - cpu_start) - (client_cpu_end - client_cpu_start)
+    ) / wall_s
     stats_wall_s = stats_end["_fetched_at"] - stats_start["_fetched_at"]
     result["server_tokens_per_s"] = (
         stats_end["tokens_emitted"] - stats_start["tokens_emitted"]
     ) / stats_wall_s
     result["server_steps_per_s"] = (stats_end["steps"] - stats_start["steps"]) / stats_wall_s
-    result["stats"] = stats
+    result["stats"] = stats_end
+    result["stats_before_window"] = stats_start
     return result
 
 
-def _fetch_stats(url: str) -> dict[str, Any]:
-    with urllib.request.urlopen(url + "/mock/stats", timeout=10) as response:
+def _fetch_stats(url: str, *, reset: bool = False) -> dict[str, Any]:
+    request = urllib.request.Request(
+        url + ("/mock/stats/reset" if reset else "/mock/stats"),
+        method="POST" if reset else "GET",
+    )
+    with urllib.request.urlopen(request, timeout=10) as response:
         stats: dict[str, Any] = json.loads(response.read())
     stats["_fetched_at"] = time.monotonic()
     return stats
 
 
 @pytest.mark.bench
-@pytest.mark.parametrize("streams", [int(n) for n in os.environ.get("MOCK_BENCH_STREAMS", "200,500,1000").split(",")])
+@pytest.mark.parametrize(
+    "streams", [int(n) for n in os.environ.get("MOCK_BENCH_STREAMS", "200,500,1000").split(",")]
+)
 def test_mock_holds_paced_streams_on_one_core(streams: int) -> None:
     allowed = os.sched_getaffinity(0)
     if not {SERVER_CORE, CLIENT_CORE} <= allowed:
@@ -233,14 +259,17 @@ def test_mock_holds_paced_streams_on_one_core(streams: int) -> None:
     finally:
         os.sched_setaffinity(0, allowed)
     stats = result["stats"]
+    ramp = result["stats_before_window"]
     print(
         f"\nstreams={streams} client_events/s={result['events_per_s']:.0f} "
         f"server_tokens/s={result['server_tokens_per_s']:.0f} (ideal {streams * 50}) "
         f"steps/s={result['server_steps_per_s']:.1f} (ideal 50) "
         f"server_cpu={result['server_cpu_fraction']:.0%} "
         f"client_cpu={result['client_cpu_fraction']:.0%} "
-        f"pacing_p50={stats['pacing_error_p50_us']}us pacing_p99={stats['pacing_error_p99_us']}us "
-        f"pacing_max={stats['pacing_error_max_us']}us "
+        f"other_cpu={result['other_cpu_fraction']:.0%} "
+        f"window: pacing_p50={stats['pacing_error_p50_us']}us "
+        f"pacing_p99={stats['pacing_error_p99_us']}us pacing_max={stats['pacing_error_max_us']}us "
+        f"(ramp+warm-up: p99={ramp['pacing_error_p99_us']}us max={ramp['pacing_error_max_us']}us) "
         f"delivery_pass_p50={stats['delivery_pass_p50_us']}us "
         f"delivery_pass_p99={stats['delivery_pass_p99_us']}us "
         f"max_running={stats['max_running_seen']} "
