@@ -19,6 +19,8 @@ from loadrun.slo import Slo
 
 NS_PER_US = 1000
 NS_PER_S = 1_000_000_000
+TOKEN_BUCKET_NS = 10_000_000
+"""Output tokens are placed in 10 ms slots by arrival time for the window's token rate."""
 
 
 @dataclass(slots=True)
@@ -53,8 +55,10 @@ class Recorder:
         self.token_sources: Counter[str] = Counter()
         self.errors: Counter[str] = Counter()
         self.windows: dict[int, _Window] = {}
-        self._ends: list[tuple[int, int, int, bool, bool]] = []
-        """Every completion as (end, output tokens, input tokens, ok, met all SLOs)."""
+        self._spans: list[tuple[int, int, bool, bool, int]] = []
+        """Every request as (start, end, ok, met all SLOs, input tokens)."""
+        self._token_buckets: dict[int, float] = {}
+        """Output tokens of successful requests by arrival time, in TOKEN_BUCKET_NS slots."""
         self.output_tokens_measured = 0
         self.input_tokens_total = 0
         self.input_tokens_reported = 0
@@ -74,13 +78,13 @@ class Recorder:
     def _absorb_one(self, record: Record) -> None:
         ok = record.outcome is Outcome.OK
         met = ok and all(slo.met_by(record) for slo in self.slos)
+        # Every request, warm-up ones too, counts for throughput by the share of it that
+        # falls inside the window (work the target did in the window).
+        self._spans.append((record.intended_ns, record.end_ns, ok, met, record.prompt_tokens or 0))
+        if ok:
+            self._add_token_times(record)
         if not record.in_window:
-            # Sent during warm-up: no latency sample, but a completion inside the window
-            # is still work the target did in the window and counts for throughput.
             self.warmup_outcomes[record.outcome.value] += 1
-            self._ends.append(
-                (record.end_ns, record.output_tokens if ok else 0, record.prompt_tokens or 0, ok, met)
-            )
             return
         self.outcomes[record.outcome.value] += 1
         for error_us in record.receive_error_us:
@@ -88,9 +92,6 @@ class Recorder:
         self.send_lag.record_us(record.send_lag_ns // NS_PER_US)
         window = self.windows.setdefault(max(0, (record.end_ns - self.origin_ns) // NS_PER_S), _Window())
         window.completed += 1
-        self._ends.append(
-            (record.end_ns, record.output_tokens if ok else 0, record.prompt_tokens or 0, ok, met)
-        )
         if not ok:
             window.failed += 1
             if record.error:
@@ -118,16 +119,50 @@ class Recorder:
         for gap in record.itl_ns():
             hist.record_us("itl", gap // NS_PER_US)
 
+    def _add_token_times(self, record: Record) -> None:
+        buckets = self._token_buckets
+        times = record.chunk_ns or [record.end_ns]
+        weight = record.output_tokens / len(times)
+        for ts in times:
+            slot = ts // TOKEN_BUCKET_NS
+            buckets[slot] = buckets.get(slot, 0.0) + weight
+
+    def _in_window(self, start_ns: int, end_ns: int) -> tuple[float, float, float, int]:
+        """(ok requests, requests within every SLO, input tokens, completions) in the window.
+
+        A request counts by the share of its duration inside the window, so a short window
+        is not quantised to whole requests; in a steady state this equals completions per
+        second, with less noise.
+        """
+        ok = met = input_tokens = 0.0
+        completions = 0
+        for start, end, was_ok, was_met, prompt in self._spans:
+            if start_ns <= end <= end_ns:
+                completions += 1
+            if not was_ok:
+                continue
+            overlap = min(end, end_ns) - max(start, start_ns)
+            if overlap <= 0:
+                continue
+            share = overlap / max(1, end - start)
+            ok += share
+            input_tokens += share * prompt
+            if was_met:
+                met += share
+        return ok, met, input_tokens, completions
+
+    def _tokens_in_window(self, start_ns: int, end_ns: int) -> float:
+        first, last = start_ns // TOKEN_BUCKET_NS, end_ns // TOKEN_BUCKET_NS
+        return sum(tokens for slot, tokens in self._token_buckets.items() if first <= slot < last)
+
     # summary --------------------------------------------------------------------------
     def summary(self, window_start_ns: int, window_end_ns: int) -> dict[str, Any]:
         self.absorb()
         seconds = max(1e-9, (window_end_ns - window_start_ns) / NS_PER_S)
-        done_in_window = [e for e in self._ends if window_start_ns <= e[0] <= window_end_ns]
-        ok_in_window = [e for e in done_in_window if e[3]]
+        ok_requests, met_requests, input_tokens, completions = self._in_window(window_start_ns, window_end_ns)
+        output_tokens = self._tokens_in_window(window_start_ns, window_end_ns)
         measured = sum(self.outcomes.values())
         ok_total = self.outcomes.get(Outcome.OK.value, 0)
-        output_tokens = sum(e[1] for e in ok_in_window)
-        input_tokens = sum(e[2] for e in ok_in_window)
         summary: dict[str, Any] = {
             "window": {
                 "start_s": round((window_start_ns - self.origin_ns) / NS_PER_S, 6),
@@ -140,11 +175,11 @@ class Recorder:
                 "failed": measured - ok_total,
                 "by_outcome": dict(sorted(self.outcomes.items())),
                 "warmup": sum(self.warmup_outcomes.values()),
-                "completed_in_window": len(done_in_window),
+                "completed_in_window": completions,
                 "top_errors": dict(self.errors.most_common(5)),
             },
             "throughput": {
-                "requests_per_s": len(ok_in_window) / seconds,
+                "requests_per_s": ok_requests / seconds,
                 "output_tokens_per_s": output_tokens / seconds,
                 "input_tokens_per_s": input_tokens / seconds,
             },
@@ -162,11 +197,10 @@ class Recorder:
             "histograms": self.histograms.encode(),
         }
         if self.slos:
-            met = sum(1 for e in done_in_window if e[4])
             summary["goodput"] = {
                 "slos": [slo.label() for slo in self.slos],
-                "requests_per_s": met / seconds,
-                "share_of_completed": met / len(done_in_window) if done_in_window else None,
+                "requests_per_s": met_requests / seconds,
+                "share_of_ok": met_requests / ok_requests if ok_requests else None,
             }
         return summary
 

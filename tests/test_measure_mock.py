@@ -22,9 +22,9 @@ from mock_server.engine import ground_truth
 
 pytestmark = pytest.mark.slow
 
-ENGINE = "small-fast"
+ENGINE = str(Path(__file__).with_name("itest-engine.toml"))
 PROMPT_TOKENS = 32
-OUTPUT_TOKENS = 48
+OUTPUT_TOKENS = 24
 
 
 @pytest.fixture(scope="module")

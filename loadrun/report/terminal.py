@@ -63,8 +63,8 @@ def render_summary(summary: dict[str, Any], out: Console | None = None) -> None:
     )
     if "goodput" in summary:
         goodput = summary["goodput"]
-        share = goodput.get("share_of_completed")
-        share_text = f" ({share:.0%} of completed)" if share is not None else ""
+        share = goodput.get("share_of_ok")
+        share_text = f" ({share:.0%} of ok requests)" if share is not None else ""
         slos = ", ".join(goodput["slos"])
         out.print(f"goodput     {goodput['requests_per_s']:.2f} requests/s{share_text} within {slos}")
     outcomes = (

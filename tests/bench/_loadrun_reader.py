@@ -18,13 +18,18 @@ from loadrun.profile import Profile, RequestSpec
 from loadrun.record import Record
 from loadrun.runner import event_loop_options
 from loadrun.target import Target
-from loadrun.transports import make_transport
+from loadrun.transports import FastTransport, make_transport
 
 
 async def main() -> None:
     base_url, streams, seconds, warmup = sys.argv[1], int(sys.argv[2]), float(sys.argv[3]), float(sys.argv[4])
     transport_name = sys.argv[5] if len(sys.argv) > 5 else "fast"
-    transport = make_transport(transport_name)
+    # "fast" stamps reads with the kernel's arrival time; "fast-callback" in the read callback.
+    transport = (
+        FastTransport(kernel_stamps=False)
+        if transport_name == "fast-callback"
+        else make_transport(transport_name)
+    )
     client = ChatClient(Target(base_url=base_url, model="m"), transport)
     profile = Profile(request=RequestSpec(input_tokens=3, output_tokens=100))
     records: list[Record] = []
