@@ -102,7 +102,7 @@ def render_calibration(rows: Sequence[dict[str, Any]], verdict: str, out: Consol
         "receive p50 ms",
         "receive p99 ms",
         "loop lag p99 ms",
-        "within 1 ms",
+        "within limits",
     ):
         table.add_column(column, justify="right")
     for row in rows:
@@ -309,3 +309,67 @@ def render_comparison(data: dict[str, Any], out: Console | None = None) -> None:
                 )
     for caution in data.get("cautions", [])[1:]:
         out.print(f"[yellow]caution[/] {caution}", highlight=False)
+
+
+def render_capacity(data: dict[str, Any], out: Console | None = None) -> None:
+    """A capacity search: one row per load step, then the capacity and the advice in words."""
+    out = out or console()
+    target = data.get("target", {})
+    slos = ", ".join(slo["label"] for slo in data.get("slos", [])) or "none"
+    out.print(
+        f"[bold]capacity of {target.get('name')}[/] ({target.get('model')}) - "
+        f"profile {data.get('profile', {}).get('name')}, SLOs: {slos}"
+    )
+    slo_keys = [slo["key"] for slo in data.get("slos", [])]
+    table = Table(title="load steps", title_justify="left", show_edge=False, pad_edge=False, box=box.SIMPLE)
+    for column in ("#", "phase", "in flight", "seconds", "requests", "req/s", "out tok/s"):
+        table.add_column(column, justify="right")
+    for key in slo_keys:
+        table.add_column(key.replace("_", " "), justify="right")
+    table.add_column("verdict")
+    for step in data.get("steps", []):
+        values = []
+        for key in slo_keys:
+            item = step["slos"].get(key, {})
+            value = item.get("value")
+            if key == "errors":
+                values.append("-" if value is None else f"{value * 100:.1f}%")
+            else:
+                values.append(_fmt(value))
+        verdict = step["verdict"]
+        style = {"over": "red", "failed": "red"}.get(verdict, "green")
+        table.add_row(
+            str(step["index"] + 1),
+            step["phase"],
+            f"{step['load']:g}",
+            f"{step['measured_s']:.1f}",
+            str(step["requests"]["measured"]),
+            f"{step['throughput']['requests_per_s']:.1f}",
+            f"{step['throughput']['output_tokens_per_s']:.0f}",
+            *values,
+            f"[{style}]{verdict}[/]" + (" *" if step.get("generator_limited") else ""),
+        )
+    out.print(table)
+    capacity = data.get("capacity", {})
+    if capacity.get("found"):
+        band = ""
+        if capacity.get("low") is not None and capacity.get("high") is not None:
+            band = f" (90 % band {capacity['low']:.1f}-{capacity['high']:.1f})"
+        out.print(
+            f"[bold]capacity per replica: {capacity['load']:.1f} in flight{band}[/], limited by "
+            f"{capacity['limited_by']}"
+        )
+    else:
+        out.print(f"[bold yellow]no capacity limit established:[/] {capacity.get('reason')}", markup=True)
+    for line in data.get("advice", {}).get("lines", []):
+        out.print(f"- {line}", markup=False, highlight=False)
+    spent = data.get("spent", {})
+    out.print(
+        f"[dim]search: {spent.get('steps')} steps, {spent.get('requests')} requests, "
+        f"{spent.get('seconds', 0):.0f} s; {data.get('search_ended')}[/]"
+    )
+    if any(step.get("generator_limited") for step in data.get("steps", [])):
+        out.print("[dim]* the load generator fell behind during this step[/]")
+    if data.get("run_folder"):
+        plots = ", ".join(data.get("plots", [])) or "none"
+        out.print(f"run folder  {data['run_folder']} (plots: {plots})", markup=False)
