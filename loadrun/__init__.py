@@ -2,8 +2,19 @@
 
 from loadrun._version import __version__
 from loadrun.alerts import GateOutputs, deliver, post_webhook
+from loadrun.capacity import (
+    AdviceSettings,
+    CapacityResult,
+    CapacitySettings,
+    SearchBudget,
+    StepPolicy,
+    find_capacity,
+    find_capacity_async,
+)
+from loadrun.capacity_steps import ErrorShareSlo, PercentileSlo
 from loadrun.client import ChatClient
 from loadrun.compare import CompareSettings, ComparisonResult, compare, compare_async
+from loadrun.cost import ReplicaPrice, TokenPrices
 from loadrun.driver import ClosedLoopPlan, run_closed_loop
 from loadrun.errors import (
     LoadrunError,
@@ -17,6 +28,7 @@ from loadrun.errors import (
     UsageError,
 )
 from loadrun.export import export_folder
+from loadrun.fits import UslFit, fit_usl
 from loadrun.gate import GateReport, GateSettings, Rule, Verdict, gate_folder, gate_measure, gate_summary
 from loadrun.history import History, HistoryRun, MetricPercentile, RunFilter
 from loadrun.metrics import HistogramSet, LatencyHistogram
@@ -32,11 +44,15 @@ from loadrun.target import Target
 from loadrun.targets import Prices, TargetsFile, TargetSpec, load_targets
 
 __all__ = [
+    "AdviceSettings",
+    "CapacityResult",
+    "CapacitySettings",
     "ChatClient",
     "ChatRequest",
     "ClosedLoopPlan",
     "CompareSettings",
     "ComparisonResult",
+    "ErrorShareSlo",
     "EventStreamParser",
     "GateOutputs",
     "GateReport",
@@ -51,33 +67,42 @@ __all__ = [
     "MeasurementError",
     "MetricPercentile",
     "Outcome",
+    "PercentileSlo",
     "Prices",
     "Profile",
     "ProfileError",
     "ProtocolViolation",
     "Record",
     "Recorder",
+    "ReplicaPrice",
     "RequestFailed",
     "RequestSpec",
     "Rule",
     "RunFilter",
     "RunResult",
+    "SearchBudget",
     "ServerSentEvent",
     "Slo",
+    "StepPolicy",
     "StoreError",
     "Target",
     "TargetError",
     "TargetSpec",
     "TargetUnreachable",
     "TargetsFile",
+    "TokenPrices",
     "TokenSource",
     "UsageError",
+    "UslFit",
     "Verdict",
     "__version__",
     "compare",
     "compare_async",
     "deliver",
     "export_folder",
+    "find_capacity",
+    "find_capacity_async",
+    "fit_usl",
     "gate_folder",
     "gate_measure",
     "gate_summary",

@@ -1,7 +1,15 @@
-"""The cautions shown before loading an endpoint that is not on this machine."""
+"""The cautions shown before loading an endpoint that is not on this machine, and the caps.
+
+A target that is not on this machine gets, before anything is sent: a plain account of
+what will be sent (requests, tokens, and the cost when prices are known), the caution
+below, a confirmation (``--yes`` when nobody can answer), and hard caps on concurrency and
+arrival rate that only an explicit ``--exceed-remote-caps`` lifts.
+"""
 
 from __future__ import annotations
 
+from loadrun.cost import TokenPrices
+from loadrun.errors import UsageError
 from loadrun.target import Target
 
 CAUTION = (
@@ -9,6 +17,30 @@ CAUTION = (
     "Load only endpoints you own or have written permission to test, respect the "
     "provider's rate limits and terms of use, and tell the service's owners first."
 )
+REMOTE_MAX_CONCURRENCY = 32
+REMOTE_MAX_RATE_PER_S = 10.0
+"""Caps for targets not on this machine (common practice, no source): enough to compare
+providers and to test a modest deployment, too little for a typo to flood a service."""
+EXCEED_CAPS_OPTION = "--exceed-remote-caps"
+
+
+def check_remote_caps(
+    target: Target, *, concurrency: int | None = None, rate_per_s: float | None = None, override: bool = False
+) -> None:
+    """Refuse a load above the caps on a target that is not on this machine, unless overridden."""
+    if override or target.is_loopback:
+        return
+    if concurrency is not None and concurrency > REMOTE_MAX_CONCURRENCY:
+        raise UsageError(
+            f"concurrency {concurrency} is above the cap of {REMOTE_MAX_CONCURRENCY} for a target that is "
+            f"not on this machine; pass {EXCEED_CAPS_OPTION} if you may load {target.endpoint.host} that hard"
+        )
+    if rate_per_s is not None and rate_per_s > REMOTE_MAX_RATE_PER_S:
+        raise UsageError(
+            f"arrival rate {rate_per_s:g}/s is above the cap of {REMOTE_MAX_RATE_PER_S:g}/s for a target "
+            f"that is not on this machine; pass {EXCEED_CAPS_OPTION} if you may load "
+            f"{target.endpoint.host} that hard"
+        )
 
 
 def plan_text(
@@ -19,6 +51,7 @@ def plan_text(
     concurrency: int,
     input_tokens: int,
     output_tokens: int,
+    prices: TokenPrices | None = None,
 ) -> str:
     """What is about to be sent, in words, for the confirmation prompt."""
     if requests is not None:
@@ -29,7 +62,13 @@ def plan_text(
     else:
         volume = f"requests for {duration_s:g} s"
         tokens = f"{input_tokens} input and up to {output_tokens} output tokens per request"
+    if prices is None:
+        cost = "Estimated cost: unknown (give --price-input and --price-output per million tokens)."
+    else:
+        each = prices.request_cost(input_tokens, output_tokens)
+        total = f", about {each * requests:.4f} in all" if requests is not None else ""
+        cost = f"Estimated cost: at most {each:.6f} per request{total}, at the prices given."
     return (
         f"loadrun will send {volume} at concurrency {concurrency} to {target.base_url} "
-        f"(model {target.model}): {tokens}.\n{CAUTION}"
+        f"(model {target.model}): {tokens}.\n{cost}\n{CAUTION}"
     )

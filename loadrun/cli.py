@@ -9,11 +9,11 @@ from typing import Annotated, Any, NoReturn
 import typer
 
 from loadrun import jsonfast
-from loadrun.caution import plan_text
 from loadrun.errors import LoadrunError, UsageError
-from loadrun.profile import Profile, RequestSpec, load_profile
+from loadrun.interrupt import EXIT_INTERRUPTED
+from loadrun.profile import ARRIVALS, Profile, load_profile
 from loadrun.report.terminal import console, render_calibration, render_summary, say
-from loadrun.runner import DEFAULT_MOCK_ENGINE, MeasureSettings, measure
+from loadrun.runner import DEFAULT_MOCK_ENGINE, MeasureSettings, describe_plan, measure
 from loadrun.slo import Slo
 from loadrun.target import Target
 from loadrun.transports import TRANSPORT_NAMES
@@ -40,7 +40,37 @@ def measure_command(
         list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")
     ] = None,
     concurrency: Annotated[
-        int | None, typer.Option("--concurrency", "-c", min=1, help="Requests in flight.")
+        int | None, typer.Option("--concurrency", "-c", min=1, help="Closed loop: requests in flight.")
+    ] = None,
+    rate: Annotated[
+        float | None,
+        typer.Option(
+            min=0.0, min_open=True, help="Open loop: new conversations per second (Poisson unless --arrival)."
+        ),
+    ] = None,
+    arrival: Annotated[
+        str | None, typer.Option(help=f"Arrival process: {', '.join(ARRIVALS)}; default: the profile's.")
+    ] = None,
+    burst_cv: Annotated[
+        float | None,
+        typer.Option(min=0.0, min_open=True, help="bursty: coefficient of variation of the gaps."),
+    ] = None,
+    trace: Annotated[
+        Path | None,
+        typer.Option(help="replay: JSONL trace (offset_s, input_tokens, output_tokens[, class])."),
+    ] = None,
+    replay_speed: Annotated[
+        float | None, typer.Option(min=0.0, min_open=True, help="replay: speed factor (2 = twice as fast).")
+    ] = None,
+    in_flight_cap: Annotated[
+        int | None,
+        typer.Option(min=1, help="Open loop: most requests in flight; more are counted as not sent."),
+    ] = None,
+    think_time: Annotated[
+        float | None, typer.Option(min=0.0, help="Closed loop: each client's pause between conversations, s.")
+    ] = None,
+    seed: Annotated[
+        int | None, typer.Option(help="Seed of the request sequence (overrides the profile's).")
     ] = None,
     requests: Annotated[
         int | None, typer.Option("--requests", "-n", min=1, help="Measured requests.")
@@ -52,10 +82,20 @@ def measure_command(
         float | None, typer.Option(min=0.0, help="Warm-up seconds, kept out of the measurement.")
     ] = None,
     input_tokens: Annotated[
-        int | None, typer.Option(min=1, help="Override the profile's input length.")
+        int | None, typer.Option(min=1, help="Fixed input length for every request class.")
     ] = None,
     output_tokens: Annotated[
-        int | None, typer.Option(min=1, help="Override the profile's max_tokens.")
+        int | None, typer.Option(min=1, help="Fixed max_tokens for every request class.")
+    ] = None,
+    context_window: Annotated[
+        int | None, typer.Option(min=1, help="The target's context window: longer requests are not sent.")
+    ] = None,
+    calibrate_input: Annotated[
+        bool | None,
+        typer.Option(
+            "--calibrate-input/--no-calibrate-input",
+            help="Learn the target's tokens per word with a short probe first; default: the profile's.",
+        ),
     ] = None,
     slo: Annotated[
         list[str] | None, typer.Option(help="Per-request SLO for goodput, METRIC=MS (ttft, tpot, itl, e2e).")
@@ -82,27 +122,44 @@ def measure_command(
     yes: Annotated[
         bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")
     ] = False,
+    first_token_timeout: Annotated[
+        float | None, typer.Option(min=0.001, help="Seconds from the send to the first token (streamed).")
+    ] = None,
+    idle_timeout: Annotated[
+        float | None, typer.Option(min=0.001, help="Seconds without a new chunk once tokens flow (streamed).")
+    ] = None,
+    retry_rate_limited: Annotated[
+        int, typer.Option(min=0, max=100, help="Retries of a 429 per request, recorded apart (0: none).")
+    ] = 0,
+    retry_wait_cap: Annotated[
+        float, typer.Option(min=0.0, help="Longest wait before a retry, whatever Retry-After asks, s.")
+    ] = 30.0,
+    stop_grace: Annotated[
+        float, typer.Option(min=0.0, help="After Ctrl-C or SIGTERM, seconds in-flight requests may finish.")
+    ] = 30.0,
+    price_input: Annotated[
+        float | None, typer.Option(min=0.0, help="Price per million input tokens (cost estimate).")
+    ] = None,
+    price_output: Annotated[
+        float | None, typer.Option(min=0.0, help="Price per million output tokens (cost estimate).")
+    ] = None,
+    exceed_remote_caps: Annotated[
+        bool, typer.Option("--exceed-remote-caps", help="Lift the load caps for a remote target.")
+    ] = False,
+    allow_key_over_http_to: Annotated[
+        str | None,
+        typer.Option(help="HOST to which the API key may go over plain http (named, never implied)."),
+    ] = None,
 ) -> None:
-    """Measure one profile at one concurrency and print the summary."""
+    """Measure one profile at one load level (a concurrency or an arrival rate) and print the summary."""
     profile = load_profile(profile_path) if profile_path else Profile()
     if input_tokens or output_tokens:
-        spec = profile.request
-        profile = Profile(
-            name=profile.name,
-            seed=profile.seed,
-            request=RequestSpec(
-                input_tokens=input_tokens or spec.input_tokens,
-                output_tokens=output_tokens or spec.output_tokens,
-                stream=spec.stream,
-                system_prompt=spec.system_prompt,
-                sampling=spec.sampling,
-            ),
-            load=profile.load,
-            source=profile.source,
-        )
+        profile = profile.with_lengths(input_tokens, output_tokens)
     if requests is not None and duration is not None:
         raise UsageError("give --requests or --duration, not both")
-    target = _target(base_url, model, api_key_env, header or [], insecure_skip_tls_verify)
+    target = _target(
+        base_url, model, api_key_env, header or [], insecure_skip_tls_verify, allow_key_over_http_to
+    )
     settings = MeasureSettings(
         profile=profile,
         target=target,
@@ -120,9 +177,27 @@ def measure_command(
         confirmed=yes,
         history_path=history,
         record_history=not no_history,
+        first_token_timeout_s=first_token_timeout,
+        idle_timeout_s=idle_timeout,
+        retry_rate_limited=retry_rate_limited,
+        retry_wait_cap_s=retry_wait_cap,
+        stop_grace_s=stop_grace,
+        handle_signals=True,
+        exceed_remote_caps=exceed_remote_caps,
+        arrival=arrival,
+        rate_per_s=rate,
+        burst_cv=burst_cv,
+        trace_path=trace,
+        replay_speed=replay_speed,
+        in_flight_cap=in_flight_cap,
+        think_time_s=think_time,
+        seed=seed,
+        context_window=context_window,
+        calibrate_input=calibrate_input,
     )
+    settings.check()
     if target is not None and not target.is_loopback and not yes:
-        _confirm(target, settings)
+        _confirm(target, settings, _token_prices(price_input, price_output))
         settings = _replace_confirmed(settings)
     if target is None:
         say(f"No --base-url given: starting the bundled mock server (engine {mock_engine}) on loopback.")
@@ -131,6 +206,10 @@ def measure_command(
         sys.stdout.write(jsonfast.dumps(result.summary).decode() + "\n")
     else:
         render_summary(result.summary)
+    interrupt = result.summary.get("interrupt")
+    if interrupt:
+        say(f"Interrupted by {interrupt['signal']}: the summary covers the requests that finished.")
+        raise typer.Exit(EXIT_INTERRUPTED)
     if result.summary.get("aborted"):
         raise typer.Exit(1)
 
@@ -564,8 +643,175 @@ def export_command(
         say(f"wrote {path}")
 
 
+@app.command("capacity")
+def capacity_command(
+    profile_path: Annotated[
+        Path | None, typer.Argument(metavar="[PROFILE]", help="Profile TOML; default: a short chat.")
+    ] = None,
+    slo: Annotated[
+        list[str] | None,
+        typer.Option(
+            help="SLO, repeatable: METRIC[:pNN]=MS (ttft, itl, tpot, e2e; p99 if no pNN) or errors=PERCENT."
+        ),
+    ] = None,
+    base_url: Annotated[str | None, typer.Option(help="API base URL, e.g. http://127.0.0.1:8000/v1.")] = None,
+    model: Annotated[str | None, typer.Option(help="Model name to request.")] = None,
+    api_key_env: Annotated[
+        str | None, typer.Option(help="NAME of the environment variable holding the API key.")
+    ] = None,
+    header: Annotated[
+        list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")
+    ] = None,
+    axis: Annotated[str, typer.Option(help="Load axis: concurrency (requests in flight).")] = "concurrency",
+    start: Annotated[float, typer.Option(min=1, help="First load to try.")] = 1,
+    max_load: Annotated[float, typer.Option(min=1, help="Highest load the search may try.")] = 512,
+    growth: Annotated[float, typer.Option(min=1.1, help="Load factor between growing steps.")] = 2.0,
+    step_min_seconds: Annotated[float, typer.Option(min=0.1, help="Shortest measured step, s.")] = 2.0,
+    step_max_seconds: Annotated[float, typer.Option(min=0.1, help="Longest measured step, s.")] = 12.0,
+    budget_steps: Annotated[int, typer.Option(min=1, help="Most load steps.")] = 8,
+    budget_seconds: Annotated[float, typer.Option(min=1, help="Most seconds for the whole search.")] = 170,
+    budget_requests: Annotated[int | None, typer.Option(min=1, help="Most requests in all.")] = None,
+    budget_tokens: Annotated[int | None, typer.Option(min=1, help="Most input + output tokens.")] = None,
+    budget_money: Annotated[
+        float | None, typer.Option(min=0.0, help="Most money at the target's token prices (--price-*).")
+    ] = None,
+    price_input: Annotated[
+        float | None, typer.Option(min=0.0, help="The target's price per million input tokens.")
+    ] = None,
+    price_output: Annotated[
+        float | None, typer.Option(min=0.0, help="The target's price per million output tokens.")
+    ] = None,
+    headroom: Annotated[
+        float, typer.Option(min=0.0, max=0.95, help="Share of capacity kept free at the operating point.")
+    ] = 0.2,
+    peak: Annotated[
+        float | None, typer.Option(min=0.0, help="Expected peak, requests/s, for the replica count.")
+    ] = None,
+    spare: Annotated[int, typer.Option(min=0, help="Spare replicas on top of the peak's.")] = 0,
+    replica_price_per_hour: Annotated[
+        float | None, typer.Option(min=0.0, help="What one replica costs per hour.")
+    ] = None,
+    accelerator_price_per_hour: Annotated[
+        float | None, typer.Option(min=0.0, help="What one accelerator costs per hour (with --accelerators).")
+    ] = None,
+    accelerators: Annotated[int, typer.Option(min=1, help="Accelerators per replica.")] = 1,
+    hosted_input_price: Annotated[
+        float | None, typer.Option(min=0.0, help="A hosted API's price per million input tokens.")
+    ] = None,
+    hosted_output_price: Annotated[
+        float | None, typer.Option(min=0.0, help="A hosted API's price per million output tokens.")
+    ] = None,
+    input_tokens: Annotated[
+        int | None, typer.Option(min=1, help="Override the profile's input length.")
+    ] = None,
+    output_tokens: Annotated[
+        int | None, typer.Option(min=1, help="Override the profile's max_tokens.")
+    ] = None,
+    json_output: Annotated[bool, typer.Option("--json", help="Print the result as JSON on stdout.")] = False,
+    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    no_save: Annotated[bool, typer.Option("--no-save", help="Write no run folder (and no plots).")] = False,
+    transport: Annotated[str, typer.Option(help=f"Transport: {' or '.join(TRANSPORT_NAMES)}.")] = "fast",
+    mock_engine: Annotated[
+        str, typer.Option(help="Engine preset or TOML of the bundled mock.")
+    ] = DEFAULT_MOCK_ENGINE,
+    timeout: Annotated[float, typer.Option(min=0.001, help="Seconds a whole request may take.")] = 120.0,
+    connect_timeout: Annotated[float, typer.Option(min=0.001, help="Seconds to open a connection.")] = 10.0,
+    insecure_skip_tls_verify: Annotated[
+        bool, typer.Option("--insecure-skip-tls-verify", help="Turn TLS certificate checks off.")
+    ] = False,
+    yes: Annotated[
+        bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")
+    ] = False,
+) -> None:
+    """Find how much load one replica holds within its SLOs; advise on scale-out and cost."""
+    from dataclasses import replace
+
+    from loadrun.capacity import (
+        AdviceSettings,
+        CapacitySettings,
+        SearchBudget,
+        StepPolicy,
+        describe_plan,
+        find_capacity,
+        parse_slo,
+    )
+    from loadrun.cost import ReplicaPrice, TokenPrices
+    from loadrun.report.terminal import render_capacity
+
+    profile = load_profile(profile_path) if profile_path else Profile()
+    if input_tokens or output_tokens:
+        request = replace(
+            profile.request,
+            input_tokens=input_tokens or profile.request.input_tokens,
+            output_tokens=output_tokens or profile.request.output_tokens,
+        )
+        profile = replace(profile, request=request)
+    if replica_price_per_hour is not None and accelerator_price_per_hour is not None:
+        raise UsageError("give --replica-price-per-hour or --accelerator-price-per-hour, not both")
+    replica_price = None
+    if replica_price_per_hour is not None:
+        replica_price = ReplicaPrice(replica_price_per_hour)
+    elif accelerator_price_per_hour is not None:
+        replica_price = ReplicaPrice.from_accelerators(accelerator_price_per_hour, accelerators)
+    hosted = None
+    if hosted_input_price is not None or hosted_output_price is not None:
+        hosted = TokenPrices(hosted_input_price or 0.0, hosted_output_price or 0.0)
+    target_prices = None
+    if price_input is not None or price_output is not None:
+        target_prices = TokenPrices(price_input or 0.0, price_output or 0.0)
+    target = _target(base_url, model, api_key_env, header or [], insecure_skip_tls_verify)
+    settings = CapacitySettings(
+        profile=profile,
+        target=target,
+        slos=tuple(parse_slo(text) for text in slo or []),
+        axis=axis,
+        start_load=start,
+        max_load=max_load,
+        growth=growth,
+        step=StepPolicy(min_seconds=step_min_seconds, max_seconds=step_max_seconds),
+        budget=SearchBudget(
+            max_steps=budget_steps,
+            max_seconds=budget_seconds,
+            max_requests=budget_requests,
+            max_tokens=budget_tokens,
+            max_cost=budget_money,
+        ),
+        advice=AdviceSettings(
+            headroom=headroom,
+            peak_requests_per_s=peak,
+            spare_replicas=spare,
+            replica_price=replica_price,
+            hosted_prices=hosted,
+        ),
+        target_prices=target_prices,
+        out_dir=None if no_save else out,
+        transport=transport,
+        mock_engine=mock_engine,
+        total_timeout_s=timeout,
+        connect_timeout_s=connect_timeout,
+        confirmed=yes,
+    )
+    if target is not None and not target.is_loopback and not yes:
+        _ask_to_send(describe_plan(settings, target))
+        settings = replace(settings, confirmed=True)
+    if target is None:
+        say(f"No --base-url given: searching the bundled mock server (engine {mock_engine}) on loopback.")
+    result = find_capacity(settings)
+    if json_output:
+        sys.stdout.write(jsonfast.dumps(result.data).decode() + "\n")
+    else:
+        render_capacity(result.data)
+    if not result.data["capacity"].get("load"):
+        raise typer.Exit(1)
+
+
 def _target(
-    base_url: str | None, model: str | None, api_key_env: str | None, headers: list[str], insecure: bool
+    base_url: str | None,
+    model: str | None,
+    api_key_env: str | None,
+    headers: list[str],
+    insecure: bool,
+    allow_key_over_http_to: str | None = None,
 ) -> Target | None:
     if base_url is None:
         if model or api_key_env or headers:
@@ -587,22 +833,32 @@ def _target(
         headers=tuple(pairs),
         verify_tls=not insecure,
     )
-    if target.endpoint.scheme == "http" and api_key_env and not target.is_loopback:
-        raise UsageError("refusing to send an API key over plain http to a host that is not this machine")
+    host = target.endpoint.host
+    named = (allow_key_over_http_to or "").strip("[]").lower()
+    allowed = bool(named) and named == host.lower()
+    if target.endpoint.scheme == "http" and api_key_env and not target.is_loopback and not allowed:
+        raise UsageError(
+            "refusing to send an API key over plain http to a host that is not this machine; "
+            f"use https, or name the host with --allow-key-over-http-to {host} if you accept the risk"
+        )
     target.api_key()  # fail now, not mid-run, when the named variable is unset
     return target
 
 
-def _confirm(target: Target, settings: MeasureSettings) -> None:
-    plan = settings.plan()
-    text = plan_text(
-        target,
-        requests=plan.requests,
-        duration_s=plan.duration_s,
-        concurrency=plan.concurrency,
-        input_tokens=settings.profile.request.input_tokens,
-        output_tokens=settings.profile.request.output_tokens,
-    )
+def _token_prices(price_input: float | None, price_output: float | None) -> Any:
+    if price_input is None and price_output is None:
+        return None
+    from loadrun.cost import TokenPrices
+
+    return TokenPrices(price_input or 0.0, price_output or 0.0)
+
+
+def _confirm(target: Target, settings: MeasureSettings, prices: Any = None) -> None:
+    _ask_to_send(describe_plan(settings, target, prices))
+
+
+def _ask_to_send(text: str) -> None:
+    """Show what will be sent and ask; refuse when nobody can answer (no terminal)."""
     say(text)
     if not sys.stdin.isatty():
         raise UsageError("not confirmed: pass --yes to load a target that is not on this machine")

@@ -4,12 +4,15 @@ The client renders a chat-completions request, sends it through a transport, and
 the response into a Record as the bytes arrive: every content-bearing chunk is stamped
 with its receive time, empty role chunks are not tokens, the usage chunk gives the token
 count when the server sends one, and every way a request can fail becomes an Outcome.
+Time limits (``timeouts.py``) end a request as their own outcomes; a 429 may be retried
+(``retry.py``), each retry a Record of its own. The API key never reaches a Record: text a
+server sends back is scrubbed of it.
 """
 
 from __future__ import annotations
 
-import math
 import time
+from collections.abc import Callable
 from time import perf_counter_ns
 
 import anyio
@@ -24,11 +27,17 @@ from loadrun.protocol import (
     error_body_message,
 )
 from loadrun.record import Outcome, Record, TokenSource
+from loadrun.retry import RetryPolicy, parse_retry_after
 from loadrun.sse import EventStreamParser
 from loadrun.target import Target
+from loadrun.timeouts import RequestWatch, Timeouts
 from loadrun.transports.base import HttpRequest, Transport
 
 CHAT_PATH = "/chat/completions"
+REDACTED = "[redacted]"
+
+OnRetry = Callable[[Record, int, float], None]
+"""Called with each retry's Record, its attempt number (2, 3, ...) and the seconds waited."""
 
 
 class _ResponseReader:
@@ -43,6 +52,7 @@ class _ResponseReader:
         "done_marker",
         "pieces",
         "record",
+        "retry_after",
         "streaming",
     )
 
@@ -56,14 +66,22 @@ class _ResponseReader:
         self.pieces = 0
         self.completion_tokens: int | None = None
         self.done_marker = False
+        self.retry_after: bytes | None = None
+
+    def expects_tokens(self) -> bool:
+        """True while the answer is read as a stream of chunks (first-token and idle limits apply)."""
+        return not self._collect
 
     def on_headers(self, status: int, headers: list[tuple[bytes, bytes]], ts_ns: int) -> None:
         record = self.record
         record.headers_ns = ts_ns
         record.status = status
         for name, value in headers:
-            if name.lower() == b"content-type":
+            lower = name.lower()
+            if lower == b"content-type":
                 self._content_type = value.lower()
+            elif lower == b"retry-after":
+                self.retry_after = value
         if status != 200:
             self._collect = True
         elif self.streaming and not self._content_type.startswith(b"text/event-stream"):
@@ -162,27 +180,48 @@ class _ResponseReader:
 
 
 class ChatClient:
-    """Sends chat-completions requests to one target through one transport."""
+    """Sends chat-completions requests to one target through one transport.
+
+    ``timeouts`` (default: only ``total_timeout_s``) end requests as timeout outcomes; the
+    connect limit in it is the transport's to enforce. ``retry`` with ``on_retry`` retries
+    rate-limited requests; no retry starts once ``stop`` is set.
+    """
 
     def __init__(
-        self, target: Target, transport: Transport, *, total_timeout_s: float | None = 600.0
+        self,
+        target: Target,
+        transport: Transport,
+        *,
+        total_timeout_s: float | None = 600.0,
+        timeouts: Timeouts | None = None,
+        retry: RetryPolicy | None = None,
+        on_retry: OnRetry | None = None,
+        stop: anyio.Event | None = None,
     ) -> None:
         self.target = target
         self.transport = transport
-        self.total_timeout_s = total_timeout_s
+        self.timeouts = timeouts if timeouts is not None else Timeouts(total_s=total_timeout_s)
+        self.retry = retry if retry is not None and retry.enabled and on_retry is not None else None
+        self._on_retry = on_retry
+        self._stop = stop
         headers = [
             ("Content-Type", "application/json"),
             ("Accept", "text/event-stream, application/json"),
             ("User-Agent", "loadrun"),
         ]
         key = target.api_key()
+        self._secret = key or None
         if key:
             headers.append(("Authorization", f"Bearer {key}"))
         headers.extend(target.headers)
         self._headers = tuple(headers)
 
     async def execute(self, request: ChatRequest, record: Record) -> Record:
-        """Send ``request``, filling ``record``; never raises for a failed request."""
+        """Send ``request``, filling ``record``; never raises for a failed request.
+
+        ``record`` is the first attempt, whatever happens after; retries (when on) go to
+        ``on_retry`` as Records of their own before this returns.
+        """
         http_request = HttpRequest(
             endpoint=self.target.endpoint,
             method="POST",
@@ -190,23 +229,74 @@ class ChatClient:
             headers=self._headers,
             body=chat_body(self.target.model, request),
         )
+        retry_after = await self._attempt(http_request, request, record)
+        if self.retry is not None and record.outcome is Outcome.RATE_LIMITED:
+            await self._retry(http_request, request, record, retry_after)
+        return record
+
+    async def _attempt(self, http_request: HttpRequest, request: ChatRequest, record: Record) -> bytes | None:
+        """One attempt; returns the answer's Retry-After value, if any."""
         reader = _ResponseReader(record, request.stream)
         record.requested_output_tokens = request.max_tokens
         record.wall_start = time.time()
         record.send_ns = perf_counter_ns()
-        timeout = self.total_timeout_s if self.total_timeout_s is not None else math.inf
+        scope = anyio.CancelScope()
+        watch = RequestWatch(self.timeouts, record, scope, reader.expects_tokens)
         try:
-            with anyio.fail_after(timeout):
+            with scope:
                 await self.transport.send(http_request, reader)
         except RequestFailed as exc:
-            record.outcome = Outcome(exc.outcome)
-            record.error = str(exc)
+            # The first failure names the outcome (an error event, then a reset: the event).
+            if record.outcome is Outcome.OK:
+                record.outcome = Outcome(exc.outcome)
+                record.error = str(exc)
+            record.error = self._scrub(record.error or "")
             record.end_ns = record.end_ns or perf_counter_ns()
-            return record
-        except TimeoutError:
-            record.outcome = Outcome.TIMEOUT_TOTAL
-            record.error = f"no complete answer within {timeout:g} s"
+            return None
+        finally:
+            watch.stop()
+        if watch.fired is not None:
+            if record.outcome is Outcome.OK:
+                record.outcome, record.error = watch.fired
+            record.error = self._scrub(record.error or "")
             record.end_ns = perf_counter_ns()
-            return record
+            return None
         reader.finish()
-        return record
+        if record.error is not None:
+            record.error = self._scrub(record.error)
+        return reader.retry_after
+
+    async def _retry(
+        self, http_request: HttpRequest, request: ChatRequest, first: Record, retry_after: bytes | None
+    ) -> None:
+        assert self.retry is not None and self._on_retry is not None
+        attempt = 1
+        while attempt <= self.retry.max_retries and not self._stopping():
+            wait_s = self.retry.wait_s(parse_retry_after(retry_after))
+            if self._stop is not None:
+                with anyio.move_on_after(wait_s):
+                    await self._stop.wait()
+                if self._stop.is_set():
+                    return
+            else:
+                await anyio.sleep(wait_s)
+            attempt += 1
+            record = Record(
+                request_id=first.request_id, intended_ns=perf_counter_ns(), in_window=first.in_window
+            )
+            record.requested_input_tokens = first.requested_input_tokens
+            record.request_class = first.request_class
+            record.conversation = first.conversation
+            record.turn = first.turn
+            retry_after = await self._attempt(http_request, request, record)
+            self._on_retry(record, attempt, wait_s)
+            if record.outcome is not Outcome.RATE_LIMITED:
+                return
+
+    def _stopping(self) -> bool:
+        return self._stop is not None and self._stop.is_set()
+
+    def _scrub(self, text: str) -> str:
+        """Servers quote request headers in errors now and then: the key must not reach a Record."""
+        secret = self._secret
+        return text.replace(secret, REDACTED) if secret and secret in text else text

@@ -60,6 +60,7 @@ __all__ = [
     "MetricComparison",
     "MetricSamples",
     "PairComparison",
+    "RoundDone",
     "Verdict",
     "compare",
     "compare_async",
@@ -260,6 +261,8 @@ async def _run_round(
         connect_timeout_s=spec.transport.connect_timeout_s,
         time_limit_s=max(1.0, remaining_s),
         confirmed=True,
+        arrival="closed",  # the load levels are concurrencies, whatever the profile says
+        record_history=False,  # a turn is a part of the comparison, not a run of its own
     )
     result = await measure_async(measure_settings)
     summary = result.summary
@@ -287,8 +290,7 @@ def _first_wall_start(folder: Path) -> float | None:
 
 def _check_context_windows(settings: CompareSettings) -> None:
     """A profile must not exceed a target's declared context window (refused before sending)."""
-    request = settings.profile.request
-    needed = request.input_tokens + request.output_tokens + len(request.system_prompt.split())
+    needed = _tokens_needed(settings.profile)
     for spec in settings.targets:
         if spec.context_window is not None and needed > spec.context_window:
             raise UsageError(
@@ -297,10 +299,17 @@ def _check_context_windows(settings: CompareSettings) -> None:
             )
 
 
+def _tokens_needed(profile: Profile) -> int:
+    """Typical input (with the system prompt) plus max_tokens of the profile's largest class."""
+    return max(
+        spec.input_tokens + spec.output_tokens + len(spec.system_prompt.split()) for spec in profile.mix()
+    )
+
+
 def plan_text(settings: CompareSettings) -> str:
     """What a comparison will send to the targets not on this machine, for the confirmation."""
     requests, seconds = settings.round_shape()
-    request = settings.profile.request
+    request = settings.profile.request  # one class, or the mean of a mix
     input_tokens = request.input_tokens + len(request.system_prompt.split())
     runs = settings.rounds * len(settings.concurrencies())
     volume = (
@@ -559,7 +568,7 @@ def judge(interval: Interval, smallest: float, requests: int) -> tuple[Verdict, 
     scale = _scale_to_decide(effect, math.log(low), math.log(high), margin)
     if scale is None:
         return Verdict.NO_DIFFERENCE, "this sample cannot tell", None
-    more = max(1, math.ceil(requests / scale**2) - requests)
+    more = max(1, math.ceil(round(requests / scale**2, 6)) - requests)
     if abs(effect) >= margin or low <= 1.0 <= high:
         reason = "this sample cannot tell"
     else:
@@ -636,10 +645,29 @@ def target_aggregate(
             if checked
             else None
         ),
+        "by_class": _by_class(ok_rows),
         "cost": _cost(spec, ok_rows, requests_per_s),
         "generator_limited_rounds": sum(1 for s in summaries if s.get("generator", {}).get("limited")),
         "stopped_rounds": sum(1 for s in summaries if s.get("interrupted") or s.get("aborted")),
     }
+
+
+def _by_class(ok_rows: Sequence[Mapping[str, Any]]) -> dict[str, Any]:
+    """Verbosity and compliance per request class, when the profile mixes classes."""
+    names = sorted({str(row["class"]) for row in ok_rows if row.get("class")})
+    if len(names) < 2:
+        return {}
+    out = {}
+    for name in names:
+        rows = [row for row in ok_rows if row.get("class") == name]
+        checked = [flag for flag in (compliance_of(row) for row in rows) if flag is not None]
+        out[name] = {
+            "ok": len(rows),
+            "output_mean": float(np.mean([int(row.get("output_tokens") or 0) for row in rows])),
+            "checked": len(checked),
+            "compliance_rate": sum(checked) / len(checked) if checked else None,
+        }
+    return out
 
 
 def _merged_histograms(summaries: Sequence[Mapping[str, Any]]) -> HistogramSet | None:

@@ -17,6 +17,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -269,7 +270,7 @@ class MonotoneCurve:
             raise ValueError("need one value per load, and at least one load")
         order = sorted(range(len(loads)), key=lambda i: loads[i])
         xs = [float(loads[i]) for i in order]
-        if xs[0] <= 0.0 or any(b <= a for a, b in zip(xs, xs[1:], strict=False)):
+        if xs[0] <= 0.0 or any(b <= a for a, b in itertools.pairwise(xs)):
             raise ValueError("loads must be positive and distinct")
         ws = None if weights is None else [float(weights[i]) for i in order]
         self.loads: tuple[float, ...] = tuple(xs)

@@ -414,6 +414,8 @@ def _baselines(
     runs = history.passing_runs(report.target_name, report.profile_hash, settings.last, exclude_id)
     if not runs:
         return [], None
+    if len(runs) == 1:
+        return runs, "the last passing run"
     return runs, f"median of the last {len(runs)} passing runs"
 
 

@@ -28,6 +28,9 @@ class Outcome(enum.StrEnum):
     PROTOCOL_ERROR = "protocol_error"
     SERVER_ERROR_EVENT = "server_error_event"
     NOT_SENT = "not_sent"
+    """Open loop: due while the in-flight cap was reached, so never sent (counted, not dropped)."""
+    OVER_CONTEXT = "over_context"
+    """Refused before sending: it would exceed the target's declared context window."""
 
 
 class TokenSource(enum.StrEnum):
@@ -64,6 +67,15 @@ class Record:
     wall_start: float = 0.0
     in_window: bool = True
     """False for warm-up requests: written to disk, kept out of the measurement."""
+    request_class: str = ""
+    """The profile's request class this request was drawn from."""
+    conversation: int = 0
+    turn: int = 0
+    """Which conversation (arrival) this request belongs to, and its turn in it (0 = first)."""
+    compliant: bool | None = None
+    """Whether the answer passed the class's answer check; None when there is no check or no answer."""
+    check_note: str | None = None
+    """Why the answer did not comply (short)."""
 
     @property
     def ok(self) -> bool:
@@ -123,4 +135,9 @@ class Record:
             "requested_input_tokens": self.requested_input_tokens,
             "requested_output_tokens": self.requested_output_tokens,
             "finish_reason": self.finish_reason,
+            "class": self.request_class,
+            "conversation": self.conversation,
+            "turn": self.turn,
+            "compliant": self.compliant,
+            "check_note": self.check_note,
         }

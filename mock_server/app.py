@@ -13,6 +13,9 @@ Routes:
 - ``GET /v1/models``, ``GET /health``, ``GET /mock/stats``; ``POST /mock/stats/reset``
   answers the stats so far and restarts the pacing and delivery-pass windows, so a
   measurement can leave out its warm-up (the counters stay cumulative: take differences).
+- ``GET /mock/faults``: the fault plan and the count of every fault injected so far (see
+  ``faults.py``); ``POST /mock/faults`` with ``{"faults": {...}, "quirks": {...}}`` puts a
+  new plan in force and restarts the counts and the seeded draw.
 - Errors: ``{"error": {"message", "type", "param", "code"}}`` with 400, 404 or 405.
 
 Hot path: a content chunk is three byte strings joined (the request's cached head, the
@@ -30,7 +33,10 @@ from typing import Any
 
 from mock_server import jsoncodec
 from mock_server.engine import Engine
+from mock_server.faults import STATUS_FAULTS, FaultInjector, FaultPlan, FaultsError, plan_from_mapping
 from mock_server.http import Request, Responder
+from mock_server.queueing import QueueingEngine
+from mock_server.quirks import ScriptedStreamReply
 from mock_server.scheduler import AdmissionRejected, Sequence
 from mock_server.stats import HttpCounters, stats_document
 from mock_server.text import VOCABULARY, choose_word_indices, count_tokens
@@ -283,9 +289,11 @@ class _BufferedReply:
 class MockApp:
     """The request handler: routes each request and answers it (see module docstring)."""
 
-    def __init__(self, engine: Engine) -> None:
+    def __init__(self, engine: Engine | QueueingEngine, plan: FaultPlan | None = None) -> None:
         self.engine = engine
         self.config = engine.config
+        self.plan = plan or FaultPlan()
+        self.faults = FaultInjector(self.plan.faults)
         self.counters = HttpCounters()
         self._created = int(time.time())
         self._ids = itertools.count(1)
@@ -297,6 +305,8 @@ class MockApp:
             "/health": {"GET": self._health},
             "/mock/stats": {"GET": self._stats},
             "/mock/stats/reset": {"POST": self._reset_timing_stats},
+            "/mock/faults": {"GET": self._faults_document, "POST": self._set_faults},
+            "/mock/queueing": {"GET": self._queueing, "POST": self._queueing},
         }
 
     def __call__(self, request: Request, responder: Responder) -> None:
@@ -333,14 +343,35 @@ class MockApp:
             _send_error(responder, 400, exc.message, param=exc.param, code=exc.code)
             return
         answer = self._plan_answer(parsed, chat=chat)
-        reply = (
-            _StreamReply(responder, answer, self._model_json, parsed.include_usage)
-            if parsed.stream
-            else _BufferedReply(responder, answer)
-        )
+        fault = self.faults.decide(parsed.stream) if chat else None
+        if fault in STATUS_FAULTS:
+            self._send_fault_status(fault, request, responder)
+            return
+        if fault == "reset_before_headers":
+            responder.reset()
+            return
+        reply: _StreamReply | _BufferedReply | ScriptedStreamReply
+        if parsed.stream and chat and (fault is not None or self.plan.quirks.shapes_stream):
+            settings = self.plan.faults
+            reply = ScriptedStreamReply(
+                responder,
+                answer,
+                include_usage=parsed.include_usage,
+                quirks=self.plan.quirks,
+                fault=fault,
+                stall_s=settings.stall_s,
+                slow_headers_s=settings.slow_headers_s,
+                after_tokens=settings.after_tokens,
+            )
+        elif parsed.stream:
+            reply = _StreamReply(responder, answer, self._model_json, parsed.include_usage)
+        else:
+            reply = _BufferedReply(responder, answer)
         try:
             sequence = self.engine.submit(answer.prompt_tokens, answer.output_tokens, reply.on_token)
         except AdmissionRejected as exc:
+            if fault is not None:
+                self.faults.withdraw(fault)  # refused before the fault could happen
             _send_error(responder, 400, exc.message, param=exc.param, code=exc.code)
             return
         # Words only for accepted requests (a huge max_tokens is rejected before this), and
@@ -348,8 +379,25 @@ class MockApp:
         answer.words = choose_word_indices(
             self.config.seed, parsed.prompt, parsed.max_tokens, answer.output_tokens
         )
-        responder.on_abort = lambda: self.engine.cancel(sequence)
+        if isinstance(reply, ScriptedStreamReply):
+            reply.cancel_generation = lambda: self.engine.cancel(sequence)
+            responder.on_abort = reply.on_abort
+        else:
+            responder.on_abort = lambda: self.engine.cancel(sequence)
         reply.start()
+
+    def _send_fault_status(self, fault: str, request: Request, responder: Responder) -> None:
+        status = STATUS_FAULTS[fault]
+        message = {
+            429: "rate limit reached for requests; retry after the given delay",
+            500: "the model server failed to handle the request",
+            503: "the model server is overloaded; try again later",
+        }[status]
+        if self.plan.quirks.echo_key_in_errors:
+            message += f" (request authorization: {request.headers.get('authorization', 'none')})"
+        kind = {429: "rate_limit_exceeded", 500: "server_error", 503: "service_unavailable"}[status]
+        headers = (("retry-after", str(self.plan.faults.retry_after_s)),) if status == 429 else ()
+        responder.send(status, error_body(message, type_=kind, param=None, code=kind), headers=headers)
 
     def _plan_answer(self, parsed: GenerationRequest, *, chat: bool) -> _Answer:
         config = self.config
@@ -391,8 +439,34 @@ class MockApp:
     def _health(self, request: Request, responder: Responder) -> None:
         responder.send(200, b'{"status":"ok"}')
 
+    def _faults_document(self, request: Request, responder: Responder) -> None:
+        responder.send(200, jsoncodec.dumps({"plan": self.plan.as_dict(), **self.faults.document()}))
+
+    def _set_faults(self, request: Request, responder: Responder) -> None:
+        """Put a new fault plan in force; counts and the seeded draw start again."""
+        try:
+            document = jsoncodec.loads(request.body)
+            if not isinstance(document, dict):
+                raise FaultsError("the body must be a JSON object with 'faults' and 'quirks'")
+            plan = plan_from_mapping(document, "POST /mock/faults")
+            if plan.quirks.one_at_a_time != self.plan.quirks.one_at_a_time:
+                raise FaultsError("quirk one_at_a_time is set at start-up only")
+        except ValueError as exc:
+            _send_error(responder, 400, str(exc), param="faults")
+            return
+        self.plan = plan
+        self.faults = FaultInjector(plan.faults)
+        self._faults_document(request, responder)
+
     def _stats(self, request: Request, responder: Responder) -> None:
         responder.send(200, jsoncodec.dumps(self._stats_document()))
+
+    def _queueing(self, request: Request, responder: Responder) -> None:
+        """M/M/c mode: the queue's own figures (POST: and start a new window)."""
+        if not isinstance(self.engine, QueueingEngine):
+            _send_error(responder, 404, "this mock does not run in M/M/c mode (no [queueing] in its engine)")
+            return
+        responder.send(200, jsoncodec.dumps(self.engine.queueing_report(reset=request.method == "POST")))
 
     def _reset_timing_stats(self, request: Request, responder: Responder) -> None:
         """Answer the stats so far, then restart the timing windows (counters stay cumulative)."""

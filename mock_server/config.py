@@ -58,7 +58,13 @@ def config_from_file(path: Path) -> EngineConfig:
 
 
 def config_from_mapping(table: dict[str, Any], *, source: str = "<mapping>") -> EngineConfig:
-    """Validate keys and value types, then build the EngineConfig."""
+    """Validate keys and value types, then build the EngineConfig.
+
+    A ``[queueing]`` table (``servers``, ``mean_service_ms``) turns on the M/M/c mode
+    (``queueing.py``) and gives a QueueingConfig.
+    """
+    if "queueing" in table:
+        return _queueing_config(table, source)
     fields = {field.name: field for field in dataclasses.fields(EngineConfig)}
     for key in table:
         if key not in fields:
@@ -71,6 +77,29 @@ def config_from_mapping(table: dict[str, Any], *, source: str = "<mapping>") -> 
         values[key] = _checked_value(key, value, type(default), source)
     try:
         return EngineConfig(**values)
+    except ValueError as exc:
+        raise ConfigError(f"engine config {source!r}: {exc}") from exc
+
+
+def _queueing_config(table: dict[str, Any], source: str) -> EngineConfig:
+    from mock_server.queueing import QueueingConfig
+
+    queueing = table["queueing"]
+    if not isinstance(queueing, dict):
+        raise ConfigError(f"'queueing' in engine config {source!r} must be a table")
+    allowed = {"servers": int, "mean_service_ms": float}
+    values: dict[str, Any] = {}
+    for key, value in queueing.items():
+        if key not in allowed:
+            raise ConfigError(
+                f"unknown key 'queueing.{key}' in engine config {source!r}; "
+                "known keys: servers, mean_service_ms"
+            )
+        values[key] = _checked_value(f"queueing.{key}", value, allowed[key], source)
+    rest = {key: value for key, value in table.items() if key != "queueing"}
+    base = config_from_mapping(rest, source=source)
+    try:
+        return QueueingConfig(**dataclasses.asdict(base), **values)
     except ValueError as exc:
         raise ConfigError(f"engine config {source!r}: {exc}") from exc
 

@@ -11,6 +11,9 @@ once or later, from engine callbacks.
 from __future__ import annotations
 
 import asyncio
+import contextlib
+import socket
+import struct
 from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -128,6 +131,11 @@ class Responder:
         else:
             self._connection.write(_LAST_CHUNK)
         self._finish()
+
+    def reset(self) -> None:
+        """Drop the connection with a TCP reset, mid-response or before it (fault injection)."""
+        self.done = True
+        self._connection.reset()
 
     def _head(
         self,
@@ -256,6 +264,17 @@ class HttpConnection(asyncio.Protocol):
     def close(self) -> None:
         if self.transport is not None and not self.transport.is_closing():
             self.transport.close()
+
+    def reset(self) -> None:
+        """Abort with SO_LINGER 0, so the peer gets a reset (RST), not an orderly close."""
+        transport = self.transport
+        if transport is None or transport.is_closing():
+            return
+        sock = transport.get_extra_info("socket")
+        if sock is not None:
+            with contextlib.suppress(OSError):
+                sock.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+        transport.abort()
 
     def _dispatch(self, request: Request) -> None:
         responder = Responder(self, request.keep_alive)

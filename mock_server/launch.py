@@ -8,6 +8,7 @@ first line, ``mock_server listening on http://H:PORT``, which the parent waits f
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import os
 import selectors
 import signal
@@ -24,7 +25,9 @@ from typing import IO
 from mock_server.app import MockApp
 from mock_server.config import load_config
 from mock_server.engine import Engine, EngineConfig
+from mock_server.faults import FaultPlan
 from mock_server.http import HttpServer
+from mock_server.queueing import QueueingEngine, make_engine
 
 READY_PREFIX = "mock_server listening on "
 
@@ -46,7 +49,7 @@ class ServingMock:
     url: str
     host: str
     port: int
-    engine: Engine
+    engine: Engine | QueueingEngine
     app: MockApp
 
     @property
@@ -56,12 +59,20 @@ class ServingMock:
 
 @contextlib.asynccontextmanager
 async def serve(
-    config: EngineConfig | str | Path | None = None, host: str = "127.0.0.1", port: int = 0
+    config: EngineConfig | str | Path | None = None,
+    host: str = "127.0.0.1",
+    port: int = 0,
+    plan: FaultPlan | None = None,
 ) -> AsyncIterator[ServingMock]:
-    """Serve the mock in this event loop until the block exits (port 0 picks a free port)."""
+    """Serve the mock in this event loop until the block exits (port 0 picks a free port).
+
+    ``plan``: faults to inject and quirks to play (see ``faults.py``); none by default.
+    """
     engine_config = config if isinstance(config, EngineConfig) else load_config(config)
-    engine = Engine(engine_config)
-    app = MockApp(engine)
+    if plan is not None and plan.quirks.one_at_a_time:
+        engine_config = dataclasses.replace(engine_config, max_running=1)
+    engine = make_engine(engine_config)
+    app = MockApp(engine, plan)
     server = HttpServer(app)
     await server.start(host, port)
     try:
@@ -139,8 +150,15 @@ def start_subprocess(
     env["PYTHONPATH"] = os.pathsep.join(p for p in (package_root, env.get("PYTHONPATH")) if p)
     # Not a with-block: the file outlives this call, RunningMock.stop() closes it.
     stderr_file = tempfile.TemporaryFile()  # noqa: SIM115
+    # A process group of its own: a Ctrl-C at the terminal reaches the parent alone, which
+    # lets its in-flight requests finish and then stops this child by PID.
     process = subprocess.Popen(
-        command, stdout=subprocess.PIPE, stderr=stderr_file, stdin=subprocess.DEVNULL, env=env
+        command,
+        stdout=subprocess.PIPE,
+        stderr=stderr_file,
+        stdin=subprocess.DEVNULL,
+        env=env,
+        process_group=0,
     )
     try:
         line = _read_first_line(process, ready_timeout_s)
@@ -154,6 +172,9 @@ def start_subprocess(
             process.stdout.close()
         stderr_file.close()
         raise MockStartError(f"{exc}; exit code {process.returncode}; stderr: {tail or '(empty)'}") from None
+    except BaseException:  # e.g. Ctrl-C while waiting: the child is in its own group, stop it here
+        RunningMock(process, "", stderr_file).stop()
+        raise
     if not line.startswith(READY_PREFIX):
         RunningMock(process, "", stderr_file).stop()
         raise MockStartError(f"unexpected first line from mock_server: {line!r}")

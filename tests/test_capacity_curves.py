@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import pytest
@@ -21,7 +22,7 @@ def test_isotonic_pools_adjacent_violators() -> None:
 @given(st.lists(st.floats(min_value=-1e6, max_value=1e6), min_size=1, max_size=30))
 def test_isotonic_output_is_non_decreasing_and_keeps_the_weighted_sum(values: list[float]) -> None:
     fitted = isotonic_increasing(values)
-    assert all(b >= a - 1e-9 * (1 + abs(a)) for a, b in zip(fitted, fitted[1:], strict=False))
+    assert all(b >= a - 1e-9 * (1 + abs(a)) for a, b in itertools.pairwise(fitted))
     assert sum(fitted) == pytest.approx(sum(values), rel=1e-9, abs=1e-6)
 
 

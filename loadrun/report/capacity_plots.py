@@ -110,7 +110,9 @@ def _latency_figure(data: Mapping[str, Any], steps: Sequence[Mapping[str, Any]])
             label=f"measured {metric} {percentile}",
         )
         if key in curves:
-            axes.plot(curves[key]["loads"], curves[key]["values"], color=_FIT, linewidth=1.2, label="monotone fit")
+            axes.plot(
+                curves[key]["loads"], curves[key]["values"], color=_FIT, linewidth=1.2, label="monotone fit"
+            )
         if limit is not None:
             axes.axhline(limit, color=_OVER, linestyle="--", linewidth=1, label=f"SLO {limit:g} ms")
         _mark_capacity(axes, data)

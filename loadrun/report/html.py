@@ -238,6 +238,7 @@ def _level_view(
         "outcome_plot": plots.outcome_shares(outcomes) if any(outcomes.values()) else None,
         "pairs": pairs,
         "any_compliance": any(aggregates.get(name, {}).get("compliance") for name in names),
+        "any_classes": any(aggregates.get(name, {}).get("by_class") for name in names),
         "any_cost": any(aggregates.get(name, {}).get("cost") for name in names),
         "metrics": LATENCY_METRICS,
     }
@@ -532,7 +533,7 @@ def _fmt_share(value: Any) -> str:
 def _fmt_money(value: Any, currency: str = "USD") -> str:
     if not _is_number(value):
         return "-"
-    digits = 2 if value >= 1 else 4 if value >= 0.01 else 6
+    digits = 2 if value >= 0.1 else 4 if value >= 0.001 else 6
     return f"{value:,.{digits}f} {currency}"
 
 

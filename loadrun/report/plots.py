@@ -50,7 +50,26 @@ _RC: Any = {
     "axes.grid": True,
     "grid.alpha": 0.3,
 }
-_RATIO_TICKS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 0.7, 0.8, 0.9, 1.0, 1.1, 1.25, 1.5, 2.0, 5.0, 10.0, 20.0, 50.0)
+_RATIO_TICKS = (
+    0.01,
+    0.02,
+    0.05,
+    0.1,
+    0.2,
+    0.5,
+    0.7,
+    0.8,
+    0.9,
+    1.0,
+    1.1,
+    1.25,
+    1.5,
+    2.0,
+    5.0,
+    10.0,
+    20.0,
+    50.0,
+)
 _plot_counter = itertools.count(1)
 
 
@@ -151,7 +170,7 @@ def percentiles_over_time(
             ax.set_ylabel("milliseconds")
             ax.set_xlabel("seconds since the first request (by completion time)")
             if ax.has_data():
-                ax.legend(loc="upper left", frameon=False, ncol=min(4, 2 * len(series)), fontsize=7.5)
+                ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=7.5)
             else:
                 ax.text(0.5, 0.5, "no samples", ha="center", va="center", transform=ax.transAxes)
         figure.tight_layout()

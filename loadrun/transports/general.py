@@ -59,16 +59,23 @@ class HttpxTransport:
 
     async def send(self, request: HttpRequest, consumer: ResponseConsumer) -> None:
         url = request.endpoint.url(request.path)
+        headers_seen = False
         try:
             async with self._client.stream(
                 request.method, url, content=request.body, headers=list(request.headers)
             ) as response:
+                headers_seen = True
                 consumer.on_headers(response.status_code, list(response.headers.raw), perf_counter_ns())
                 async for chunk in response.aiter_raw():
                     consumer.on_body(chunk, perf_counter_ns())
                 consumer.on_end(perf_counter_ns())
         except httpx.HTTPError as exc:
-            raise RequestFailed(failure_outcome(exc), f"{type(exc).__name__}: {exc}") from exc
+            outcome = failure_outcome(exc)
+            if outcome == "stream_cut" and not headers_seen:
+                # Closed or reset before any response: nothing was cut, no answer came.
+                outcome = "connection_error"
+            detail = str(exc) or str(exc.__context__ or "") or "no detail"
+            raise RequestFailed(outcome, f"{type(exc).__name__}: {detail}") from exc
 
     def receive_clock(self, endpoint: Endpoint) -> str:
         return "application"

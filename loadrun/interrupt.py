@@ -1,0 +1,90 @@
+"""Ctrl-C (SIGINT) and SIGTERM during a run: stop sending, let in-flight requests finish.
+
+First signal: the run's stop event is set, so no new request and no retry starts; the
+requests in flight get the grace period to finish (``MeasureSettings.stop_grace_s``) and
+are then cancelled; the summary is written marked interrupted, and the command exits 130.
+
+Second signal: exit at once, status 130, after killing the child processes the run
+started (the embedded mock) by PID. Nothing on disk is left half-written: the handler runs
+as an event-loop callback, never inside a write, and record lines are written whole and
+flushed one by one from the loop; summaries go to a temporary file that is then renamed;
+the history database is SQLite, whose journal makes an interrupted transaction vanish.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import os
+import signal
+import sys
+from collections.abc import Iterator
+
+import anyio
+
+EXIT_INTERRUPTED = 130
+"""The shell's status for a process ended by SIGINT (128 + 2)."""
+SIGNALS = (signal.SIGINT, signal.SIGTERM)
+
+
+class SignalStop:
+    """Turns the first SIGINT/SIGTERM into a stop and the second into an immediate exit."""
+
+    def __init__(self, stop: anyio.Event, grace_s: float, child_pids: tuple[int, ...] = ()) -> None:
+        self.stop = stop
+        self.grace_s = grace_s
+        self.child_pids = child_pids
+        self.signal_name: str | None = None
+        """The first signal received, e.g. "SIGINT"; None while none came."""
+        self._installed: list[signal.Signals] = []
+
+    def install(self) -> None:
+        loop = asyncio.get_running_loop()
+        for signum in SIGNALS:
+            try:
+                loop.add_signal_handler(signum, self._on_signal, signum)
+            except (NotImplementedError, RuntimeError, ValueError):  # not the main thread, or no signals
+                continue
+            self._installed.append(signum)
+
+    def remove(self) -> None:
+        loop = asyncio.get_running_loop()
+        for signum in self._installed:
+            loop.remove_signal_handler(signum)
+        self._installed.clear()
+
+    def _on_signal(self, signum: signal.Signals) -> None:
+        if self.signal_name is None:
+            self.signal_name = signal.Signals(signum).name
+            _tell(
+                f"{self.signal_name}: no new requests; those in flight have {self.grace_s:g} s to finish. "
+                "Send it again to exit at once."
+            )
+            self.stop.set()
+            return
+        _tell(f"{signal.Signals(signum).name} again: exiting at once.")
+        for pid in self.child_pids:
+            with contextlib.suppress(ProcessLookupError, PermissionError):
+                os.kill(pid, signal.SIGKILL)
+        os._exit(EXIT_INTERRUPTED)
+
+
+@contextlib.contextmanager
+def signals_stop(
+    stop: anyio.Event, grace_s: float, child_pids: tuple[int, ...] = (), *, enabled: bool = True
+) -> Iterator[SignalStop]:
+    """Install a SignalStop for the block (when ``enabled``); the old handlers come back after."""
+    guard = SignalStop(stop, grace_s, child_pids)
+    if enabled:
+        guard.install()
+    try:
+        yield guard
+    finally:
+        guard.remove()
+
+
+def _tell(message: str) -> None:
+    # Plain text on stderr: the terminal view may be mid-render, and this must never fail.
+    with contextlib.suppress(OSError, ValueError):
+        sys.stderr.write(f"\n{message}\n")
+        sys.stderr.flush()

@@ -1,0 +1,180 @@
+"""The gate against the bundled mock over loopback: every verdict on demand, and no false alarms.
+
+Mock settings produce each verdict: an empty history (no baseline), the same engine again
+(pass), an engine 25 % slower per step (regression), a context window too small for the
+profile's requests (invalid: every request fails with HTTP 400), too few requests
+(invalid: too few samples). Runs are short (tens of requests at concurrency 16, eight
+output tokens each) so that 40 repetitions stay cheap.
+"""
+
+from __future__ import annotations
+
+import collections
+import os
+import re
+import shlex
+import shutil
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from dataclasses import replace
+from pathlib import Path
+
+import pytest
+
+from loadrun.gate import GateSettings, Verdict, gate_measure
+from loadrun.history import History, RunFilter
+from loadrun.profile import LoadSpec, Profile, RequestSpec
+from loadrun.runner import MeasureSettings, embedded_mock
+from loadrun.target import Target
+from mock_server.config import load_config
+
+pytestmark = pytest.mark.slow
+
+REPO = Path(__file__).resolve().parent.parent
+PROFILE = Profile(name="ferry-smoke", request=RequestSpec(input_tokens=16, output_tokens=8), load=LoadSpec())
+TARGET_NAME = "larkspit-desk-mock"
+REPETITIONS = 40
+
+
+def engine_toml(folder: Path, name: str, **changes: float | int) -> Path:
+    """The small-fast preset with some of its values changed."""
+    values = {**load_config("small-fast").as_dict(), **changes}
+    lines = [
+        f"{key} = {value!r}" if not isinstance(value, str) else f'{key} = "{value}"'
+        for key, value in values.items()
+    ]
+    path = folder / f"{name}.toml"
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+@pytest.fixture(scope="module")
+def normal() -> Iterator[Target]:
+    with embedded_mock("small-fast") as (target, _info):
+        yield target
+
+
+def measuring(target: Target, requests: int = 64) -> MeasureSettings:
+    return MeasureSettings(
+        profile=PROFILE, target=target, concurrency=16, requests=requests, warmup_s=0.1, out_dir=None
+    )
+
+
+def gating(history: Path, **changes: object) -> GateSettings:
+    return replace(GateSettings(history_path=history, target_name=TARGET_NAME, min_samples=50), **changes)  # type: ignore[arg-type]
+
+
+def test_an_engine_25_percent_slower_per_step_is_a_regression(normal: Target, tmp_path: Path) -> None:
+    settings = gating(tmp_path / "history.sqlite3")
+    assert gate_measure(measuring(normal), settings).verdict is Verdict.NO_BASELINE
+    assert gate_measure(measuring(normal), settings).verdict is Verdict.PASS
+    base = load_config("small-fast")
+    slow_engine = engine_toml(
+        tmp_path,
+        "slow",
+        step_base_ms=base.step_base_ms * 1.25,
+        decode_per_seq_ms=base.decode_per_seq_ms * 1.25,
+    )
+    with embedded_mock(str(slow_engine)) as (slow, _info):
+        report = gate_measure(measuring(slow), settings)
+    assert report.verdict is Verdict.REGRESSION and report.exit_code == 1, report.reasons
+    for result in report.rules:
+        assert result.regressed and result.change is not None
+        # Every latency here is a whole number of engine steps, so all scale by 1.25.
+        assert result.change.ratio == pytest.approx(1.25, abs=0.08), result.rule.label
+    # The slow run is stored as a regression and is no baseline for the next one.
+    assert gate_measure(measuring(normal), settings).verdict is Verdict.PASS
+
+
+def test_a_context_window_too_small_makes_the_run_invalid(tmp_path: Path) -> None:
+    narrow = engine_toml(tmp_path, "narrow", context_window=16)  # 16 prompt + 8 output tokens do not fit
+    with embedded_mock(str(narrow)) as (target, _info):
+        report = gate_measure(measuring(target, requests=20), gating(tmp_path / "history.sqlite3"))
+    assert report.verdict is Verdict.INVALID and report.exit_code == 2
+    assert any("too many errors: 20 of 20" in reason for reason in report.reasons), report.reasons
+
+
+def test_too_few_requests_make_the_run_invalid(normal: Target, tmp_path: Path) -> None:
+    report = gate_measure(measuring(normal, requests=10), gating(tmp_path / "history.sqlite3"))
+    assert report.verdict is Verdict.INVALID and report.exit_code == 2
+    assert any("too few samples" in reason for reason in report.reasons), report.reasons
+
+
+def test_no_change_passes_in_at_least_95_percent_of_40_runs(normal: Target, tmp_path: Path) -> None:
+    """The false-alarm rate of the default rules (ttft, tpot and e2e p95, 15 %) on an unchanged
+    mock: the first run becomes the baseline, then 40 runs are each gated against the median
+    of the last 5 that passed, as a nightly job would do over 40 nights."""
+    settings = gating(tmp_path / "history.sqlite3")
+    started = time.monotonic()
+    verdicts: collections.Counter[str] = collections.Counter()
+    worst_low: dict[str, float] = {}
+    assert gate_measure(measuring(normal), settings).verdict is Verdict.NO_BASELINE
+    for _ in range(REPETITIONS):
+        report = gate_measure(measuring(normal), settings)
+        verdicts[report.verdict.value] += 1
+        for result in report.rules:
+            if result.change is not None:
+                worst_low[result.rule.label] = max(
+                    worst_low.get(result.rule.label, 0.0), result.change.ratio_low
+                )
+    seconds = time.monotonic() - started
+    print(f"\n{REPETITIONS} unchanged runs in {seconds:.1f} s: {dict(verdicts)}")
+    print(f"highest lower ends of the ratio intervals: {worst_low}")
+    assert verdicts["regression"] / REPETITIONS <= 0.05
+    assert verdicts["pass"] / REPETITIONS >= 0.95, dict(verdicts)
+    with History(settings.history_path) as history:
+        assert len(history.find(RunFilter(limit=100))) == REPETITIONS + 1
+
+
+def readme_nightly_command() -> list[str]:
+    """The cron line of the README's nightly example, as arguments after ``loadrun``."""
+    text = (REPO / "README.md").read_text()
+    match = re.search(
+        r"^\s*\S+ \S+ \* \* \* cd \S+ && \S*loadrun (gate .*?) >> \S+ 2>&1$", text, re.MULTILINE
+    )
+    assert match, "the README has no nightly cron line"
+    return shlex.split(match[1])
+
+
+def test_the_readme_nightly_example_works_against_the_embedded_mock(tmp_path: Path) -> None:
+    """Two nights of the README's cron line: the first becomes the baseline, the second passes.
+
+    Shortened for the suite with options appended after the README's own (the last one wins):
+    fewer requests and a shorter warm-up. Paths the example writes outside its folder are
+    redirected into the test's folder; the webhook variable is left unset there.
+    """
+    args = readme_nightly_command()
+    shutil.copytree(REPO / "profiles", tmp_path / "profiles")
+    prometheus = args.index("--prometheus") + 1
+    args[prometheus] = str(tmp_path / "loadrun.prom")
+    if "--webhook-env" in args:
+        at = args.index("--webhook-env")
+        del args[at : at + 2]
+    args += ["-n", "48", "-c", "16", "--warmup", "0.2", "--min-samples", "40"]
+    (tmp_path / "out").mkdir(exist_ok=True)
+    env = {key: value for key, value in os.environ.items() if not key.startswith("LOADRUN")}
+    for night, verdict in ((1, "NO BASELINE YET"), (2, "PASS")):
+        result = subprocess.run(
+            [sys.executable, "-m", "loadrun", *args],
+            cwd=tmp_path,
+            capture_output=True,
+            text=True,
+            timeout=110,
+            stdin=subprocess.DEVNULL,
+            env=env,
+        )
+        assert result.returncode == 0, (night, result.stdout, result.stderr)
+        assert verdict in result.stdout, result.stdout
+    assert (tmp_path / "loadrun.prom").is_file()
+    assert list((tmp_path / "out").glob("*.xml"))
+    listing = subprocess.run(
+        [sys.executable, "-m", "loadrun", "history", "list", "--json"],
+        cwd=tmp_path,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    assert listing.returncode == 0, listing.stderr
+    assert [line.count('"verdict"') for line in listing.stdout.splitlines()] == [1, 1]
