@@ -330,16 +330,18 @@ class _Search:
         return whole_steps or hi / lo - 1 <= self.settings.resolution
 
     def _probe(self, lo: Step, hi: Step) -> float | None:
-        """Just below where the curves predict the crossing (a step within the limit right
-        under it and the step over it then close the bracket), kept off the bracket's ends by
-        a tenth of its width (log load) so that every probe shrinks it; the geometric
-        midpoint when there is no prediction."""
+        """Just below where the curves predict the crossing, kept off the bracket's ends by a
+        tenth of its width (log load) so that every probe shrinks it; the geometric midpoint
+        when there is no prediction."""
         log_lo, log_hi = math.log(lo.load), math.log(hi.load)
         predictions = []
         for crossing in self._crossings(limit_to=(lo.load, hi.load)).values():
             if crossing is not None:
                 predictions.append(math.log(crossing))
-        guess = min(predictions) if predictions else (log_lo + log_hi) / 2
+        # Aim a third of the resolution below the predicted crossing: the probe then most
+        # likely lands within the limit and, with the step above it, closes the bracket.
+        margin = math.log1p(-self.settings.resolution / 3)
+        guess = min(predictions) + margin if predictions else (log_lo + log_hi) / 2
         span = log_hi - log_lo
         guess = min(max(guess, log_lo + span / 10), log_hi - span / 10)
         if self.settings.axis == "concurrency":
@@ -461,6 +463,9 @@ class _Search:
             concurrency=int(load) if settings.axis == "concurrency" else None,
             arrival=None if settings.axis == "concurrency" else "poisson",
             rate_per_s=load if settings.axis == "rate" else None,
+            # A seed of its own per step: the same arrival sequence, scaled to every rate,
+            # would repeat one chance fluctuation in every step.
+            seed=settings.profile.seed + len(self.steps),
             duration_s=cap,
             warmup_s=warmup,
             slos=tuple(Slo(slo.metric, slo.limit_ms) for slo in self.latency_slos),

@@ -251,7 +251,7 @@ class Analysis:
         if below:
             first = min(self.loads)
             labels = ", ".join(limit.label for limit in below)
-            reason = f"{labels} is broken even at the lowest load tried ({load_text(first)})"
+            reason = f"{labels} is broken even at the lowest load tried ({self._text(first)})"
             if any(s.heavy_errors for s in self.steps if s.load == first):
                 reason += f"; {self._step_at(first).over[-1]}"
             return base | {
@@ -272,13 +272,13 @@ class Analysis:
             if any(limit.low is not None and limit.high is not None for limit in within):
                 band_low = min(limit.load if limit.low is None else limit.low for limit in within)
                 band_high = min(limit.load if limit.high is None else limit.high for limit in within)
-            reason = f"{binding.label} is reached at {load_text(binding.load)}"
+            reason = f"{binding.label} is reached at {self._text(binding.load)}"
             if binding.detail:
                 reason += f" ({binding.detail})"
             return base | {
                 "found": True,
                 "load": binding.load,
-                "concurrency": binding.load,
+                "concurrency": binding.load if self.closed else self._in_flight_at(binding.load),
                 "low": band_low,
                 "high": band_high,
                 "limited_by": binding.label,
@@ -289,11 +289,11 @@ class Analysis:
         highest = max(self.loads)
         return base | {
             "load": highest,
-            "concurrency": highest,
+            "concurrency": highest if self.closed else self._in_flight_at(highest),
             "lower_bound": True,
             "limited_by": "search range",
             "limit_kind": "none reached",
-            "reason": f"no limit was reached up to {load_text(highest)}: {self.end_reason}",
+            "reason": f"no limit was reached up to {self._text(highest)}: {self.end_reason}",
             **self._rates_at(highest),
         }
 
@@ -311,6 +311,20 @@ class Analysis:
         if key == "requests_per_s" and self.usl is not None and self.closed:
             return float(self.usl.predict(load))
         return None
+
+    def _in_flight_at(self, load: float) -> float | None:
+        """Mean requests in flight at ``load`` (Little's law per step, interpolated)."""
+        pairs = [
+            (s.load, s.stats.requests_per_s * s.stats.mean_e2e_s)
+            for s in self.steps
+            if s.stats.mean_e2e_s is not None
+        ]
+        if not pairs:
+            return None
+        return interpolate_log([p[0] for p in pairs], [p[1] for p in pairs], load)
+
+    def _text(self, load: float) -> str:
+        return load_text(load, self.settings.axis)
 
     # past the limit ------------------------------------------------------------------------
     def _past_limit(self) -> list[dict[str, Any]]:
@@ -363,45 +377,66 @@ class Analysis:
                 "one request alone cannot meet), then search again."
             )
             return out
-        operating = max(1.0, math.floor(load * (1.0 - advice.headroom)))
+        if self.closed:
+            operating = max(1.0, math.floor(load * (1.0 - advice.headroom)))
+        else:
+            operating = float(f"{load * (1.0 - advice.headroom):.3g}")
         x_op = self._throughput_at(operating, "requests_per_s")
         out_tokens_op = self._throughput_at(operating, "output_tokens_per_s")
         in_tokens_op = self._throughput_at(operating, "input_tokens_per_s")
+        in_flight_op = operating if self.closed else self._in_flight_at(operating)
         out.update(
             {
-                "operating_concurrency": operating,
+                "operating_load": operating,
+                "operating_concurrency": in_flight_op,
                 "operating_requests_per_s": x_op,
                 "operating_output_tokens_per_s": out_tokens_op,
                 "operating_input_tokens_per_s": in_tokens_op,
-                "scale_out_signal": "in-flight requests per replica",
+                "scale_out_signal": (
+                    "in-flight requests per replica" if self.closed else "requests per second per replica"
+                ),
                 "scale_out_at": operating,
             }
         )
         band = ""
         if capacity.get("low") is not None and capacity.get("high") is not None:
-            band = f" (90 % band {capacity['low']:.1f} to {capacity['high']:.1f})"
+            band = f" (90 % band {capacity['low']:.3g} to {capacity['high']:.3g})"
         rate = capacity.get("requests_per_s")
         tokens = capacity.get("output_tokens_per_s")
+        if self.closed:
+            size = f"{load:.1f} requests in flight{band}, about {_num(rate)} requests/s"
+            floor = f"{load:g} requests in flight ({_num(rate)} requests/s)"
+            point = f"{operating:g} in-flight requests per replica"
+            signal = (
+                f"in-flight requests per replica stay above {operating:g} "
+                f"(or requests/s per replica above {_num(x_op)})"
+            )
+        else:
+            in_flight = self._in_flight_at(load)
+            size = f"{load:.3g} requests/s offered{band}, about {_num(in_flight)} requests in flight"
+            floor = f"{load:.3g} requests/s offered"
+            point = f"{operating:g} requests/s per replica (about {_num(in_flight_op)} in flight)"
+            signal = (
+                f"requests/s per replica stay above {operating:g} "
+                f"(or in-flight requests per replica above {_num(in_flight_op)})"
+            )
         if capacity.get("found"):
             lines.append(
-                f"Capacity per replica: {load:.1f} requests in flight{band}, about "
-                f"{_num(rate)} requests/s and {_num(tokens)} output tokens/s. "
+                f"Capacity per replica: {size} and {_num(tokens)} output tokens/s. "
                 f"Limited by {capacity['limited_by']}."
             )
         else:
             lines.append(
-                f"Capacity per replica is at least {load:g} requests in flight ({_num(rate)} requests/s): "
-                f"{capacity.get('reason')}. Search a wider range or with a larger budget for the real limit."
+                f"Capacity per replica is at least {floor}: {capacity.get('reason')}. "
+                "Search a wider range or with a larger budget for the real limit."
             )
         lines.append(
-            f"Operate at up to {operating:g} in-flight requests per replica "
-            f"({advice.headroom:.0%} headroom): about {_num(x_op)} requests/s and "
-            f"{_num(out_tokens_op)} output tokens/s per replica."
+            f"Operate at up to {point} ({advice.headroom:.0%} headroom): about {_num(x_op)} requests/s "
+            f"and {_num(out_tokens_op)} output tokens/s per replica."
         )
         lines.append(
-            f"Scale out when in-flight requests per replica stay above {operating:g} "
-            f"(or requests/s per replica above {_num(x_op)}); add the next replica before that, not at "
-            f"the limit of {load:.1f}."
+            f"Scale out when {signal}; add the next replica before that, not at the limit of "
+            f"{self._text(load)}."
         )
         if advice.peak_requests_per_s is not None and x_op:
             needed = math.ceil(advice.peak_requests_per_s / x_op)
@@ -429,7 +464,7 @@ class Analysis:
             throughput = row["requests_per_s"] or row["requests_per_s_usl"]
             if parts or throughput:
                 lines.append(
-                    f"Past the limit, at {row['factor']:g}x ({row['load']:.0f} in flight): "
+                    f"Past the limit, at {row['factor']:g}x ({self._text(row['load'])}): "
                     + (", ".join(parts) + "; " if parts else "")
                     + f"throughput {_num(throughput)} requests/s."
                 )

@@ -391,9 +391,7 @@ def step_json(step: Step, slos: Sequence[CapacitySlo], axis: str = "concurrency"
         "concurrency": int(step.load) if axis == "concurrency" else None,
         "rate_per_s": step.load if axis == "rate" else None,
         # Little's law: requests in flight on average = throughput x mean latency.
-        "in_flight_mean": (
-            stats.requests_per_s * stats.mean_e2e_s if stats.mean_e2e_s is not None else None
-        ),
+        "in_flight_mean": (stats.requests_per_s * stats.mean_e2e_s if stats.mean_e2e_s is not None else None),
         "warmup_s": round(step.warmup_s, 3),
         "time_cap_s": round(step.cap_s, 3),
         "measured_s": round(stats.seconds, 3),

@@ -45,7 +45,7 @@ def measure_command(
     rate: Annotated[
         float | None,
         typer.Option(
-            min=0.0, min_open=True, help="Open loop: new conversations per second (Poisson unless --arrival)."
+            help="Open loop: new conversations per second (Poisson unless --arrival)."
         ),
     ] = None,
     arrival: Annotated[
@@ -53,14 +53,14 @@ def measure_command(
     ] = None,
     burst_cv: Annotated[
         float | None,
-        typer.Option(min=0.0, min_open=True, help="bursty: coefficient of variation of the gaps."),
+        typer.Option(help="bursty: coefficient of variation of the gaps."),
     ] = None,
     trace: Annotated[
         Path | None,
         typer.Option(help="replay: JSONL trace (offset_s, input_tokens, output_tokens[, class])."),
     ] = None,
     replay_speed: Annotated[
-        float | None, typer.Option(min=0.0, min_open=True, help="replay: speed factor (2 = twice as fast).")
+        float | None, typer.Option(help="replay: speed factor (2 = twice as fast).")
     ] = None,
     in_flight_cap: Annotated[
         int | None,
@@ -662,7 +662,9 @@ def capacity_command(
     header: Annotated[
         list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")
     ] = None,
-    axis: Annotated[str, typer.Option(help="Load axis: concurrency (requests in flight).")] = "concurrency",
+    axis: Annotated[
+        str, typer.Option(help="Load axis: concurrency (requests in flight) or rate (Poisson arrivals/s).")
+    ] = "concurrency",
     start: Annotated[float, typer.Option(min=1, help="First load to try.")] = 1,
     max_load: Annotated[float, typer.Option(min=1, help="Highest load the search may try.")] = 512,
     growth: Annotated[float, typer.Option(min=1.1, help="Load factor between growing steps.")] = 2.0,
@@ -801,6 +803,10 @@ def capacity_command(
         sys.stdout.write(jsonfast.dumps(result.data).decode() + "\n")
     else:
         render_capacity(result.data)
+    if result.folder is not None:
+        from loadrun.report.html import write_report
+
+        say(f"report {write_report(result.folder)}")
     if not result.data["capacity"].get("load"):
         raise typer.Exit(1)
 

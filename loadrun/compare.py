@@ -480,9 +480,14 @@ class PairComparison:
         if verdict is Verdict.NO_DIFFERENCE:
             return f"{self.a} and {self.b}: no difference that this sample can tell"
         if verdict is Verdict.MIXED:
-            return f"{self.a} vs {self.b}: faster on some metrics, slower on others"
-        which = [f"{m.metric} p{m.percentile:g}" for m in self.metrics if m.verdict is verdict]
-        return f"{self.a} is {verdict.value} than {self.b} ({', '.join(which)})"
+            return (
+                f"{self.a} is faster than {self.b} on {self._which(Verdict.FASTER)} "
+                f"and slower on {self._which(Verdict.SLOWER)}"
+            )
+        return f"{self.a} is {verdict.value} than {self.b} ({self._which(verdict)})"
+
+    def _which(self, verdict: Verdict) -> str:
+        return ", ".join(f"{m.metric} p{m.percentile:g}" for m in self.metrics if m.verdict is verdict)
 
     def to_json(self) -> dict[str, Any]:
         return {

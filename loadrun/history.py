@@ -295,8 +295,10 @@ class History:
             raise StoreError(f"cannot write the history database {self.path}: {exc}") from exc
         try:
             yield self._db
-        except BaseException:
+        except BaseException as exc:
             self._db.execute("ROLLBACK")
+            if isinstance(exc, sqlite3.Error):
+                raise StoreError(f"cannot write the history database {self.path}: {exc}") from exc
             raise
         try:
             self._db.execute("COMMIT")

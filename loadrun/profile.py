@@ -618,8 +618,18 @@ class _Reader:
         for key, _ in check.request_fields() if check is not None else ():
             if key in sampling:
                 self.fail(f"{prefix}sampling.{key}", "is set by the JSON Schema check; drop it here")
+        typical_input = input_length.mean()
+        if prompts is not None:  # as many tokens as words, until a calibration says otherwise
+            system_words = len(self.string(raw, "system_prompt", prefix, "").split())
+            typical_input = system_words + sum(
+                len(content.split())
+                for line in prompts.conversations
+                for pairs in line
+                for key, content in pairs
+                if key == "content"
+            ) / len(prompts.conversations)
         return RequestSpec(
-            input_tokens=max(1, round(input_length.mean())),
+            input_tokens=max(1, round(typical_input)),
             output_tokens=max(1, round(output_length.mean())),
             stream=self.boolean(raw, "stream", prefix, True),
             system_prompt=self.string(raw, "system_prompt", prefix, ""),

@@ -13,7 +13,9 @@ statuses, wrong content types): they never have a first token to wait for.
 
 The receive path pays nothing for this: a request's timer is armed for its earliest
 deadline and, when it fires, looks at the Record's own timestamps; if a chunk came in the
-meantime it re-arms for the new deadline, so it fires at most once per idle period.
+meantime it re-arms for the new deadline, so it fires at most once per idle period. Once
+tokens flow, deadlines only move later; before the first token, an idle limit can start
+at any moment, so the timer then also looks every idle period.
 """
 
 from __future__ import annotations
@@ -98,44 +100,52 @@ class RequestWatch:
             self._handle = None
 
     def _arm(self, now: int) -> None:
-        due = self._next_deadline()
+        due = self._next_deadline(now)
         if due is not None:
             delay = max(0, due[0] - now) / NS_PER_S
             self._handle = asyncio.get_running_loop().call_later(delay, self._check)
 
-    def _next_deadline(self) -> tuple[int, Outcome, str] | None:
+    def _next_deadline(self, now: int) -> tuple[int, Outcome | None] | None:
+        """The earliest deadline and its outcome; outcome None: only a time to look again."""
         record = self._record
         start = record.send_ns
-        best: tuple[int, Outcome, str] | None = None
+        candidates: list[tuple[int, Outcome | None]] = []
         if self._total_ns:
-            best = (start + self._total_ns, Outcome.TIMEOUT_TOTAL, "no complete answer within")
+            candidates.append((start + self._total_ns, Outcome.TIMEOUT_TOTAL))
         if self._expects_tokens():
             if not record.first_token_ns:
-                if self._first_ns and (best is None or start + self._first_ns < best[0]):
-                    best = (start + self._first_ns, Outcome.TIMEOUT_FIRST_TOKEN, "no first token within")
+                if self._first_ns:
+                    candidates.append((start + self._first_ns, Outcome.TIMEOUT_FIRST_TOKEN))
+                if self._idle_ns:
+                    candidates.append((now + self._idle_ns, None))
             elif self._idle_ns and record.chunk_ns:
-                due = record.chunk_ns[-1] + self._idle_ns
-                if best is None or due < best[0]:
-                    best = (due, Outcome.TIMEOUT_IDLE, "no chunk for")
-        return best
+                candidates.append((record.chunk_ns[-1] + self._idle_ns, Outcome.TIMEOUT_IDLE))
+        return min(candidates, key=lambda item: item[0]) if candidates else None
 
     def _check(self) -> None:
         self._handle = None
         now = perf_counter_ns()
-        due = self._next_deadline()
+        due = self._next_deadline(now)
         if due is None:
             return
-        deadline, outcome, words = due
-        if now >= deadline:
-            limit = {
-                Outcome.TIMEOUT_TOTAL: self._total_ns,
-                Outcome.TIMEOUT_FIRST_TOKEN: self._first_ns,
-                Outcome.TIMEOUT_IDLE: self._idle_ns,
-            }[outcome]
-            self.fired = (outcome, f"{words} {limit / NS_PER_S:g} s")
+        deadline, outcome = due
+        if outcome is not None and now >= deadline:
+            self.fired = (outcome, _MESSAGES[outcome].format(self._limit_ns(outcome) / NS_PER_S))
             self._scope.cancel()
             return
         self._arm(now)
+
+    def _limit_ns(self, outcome: Outcome) -> int:
+        if outcome is Outcome.TIMEOUT_FIRST_TOKEN:
+            return self._first_ns
+        return self._idle_ns if outcome is Outcome.TIMEOUT_IDLE else self._total_ns
+
+
+_MESSAGES = {
+    Outcome.TIMEOUT_TOTAL: "no complete answer within {:g} s",
+    Outcome.TIMEOUT_FIRST_TOKEN: "no first token within {:g} s",
+    Outcome.TIMEOUT_IDLE: "no chunk for {:g} s",
+}
 
 
 def _ns(seconds: float | None) -> int:

@@ -43,6 +43,9 @@ from mock_server.engine import Engine, EngineConfig
 from mock_server.scheduler import AdmissionRejected, SchedulerCounters, Sequence
 from mock_server.stats import SampleWindow
 
+_WAKE_EARLY_S = 0.0015
+"""The service-end timer fires this much early; the loop is then polled until the exact end."""
+
 
 @dataclass(frozen=True, slots=True)
 class QueueingConfig(EngineConfig):
@@ -81,7 +84,8 @@ class QueueingEngine:
         self._in_service: list[tuple[float, int, _Job]] = []
         """Jobs in service as a heap of (exact end time, tie-breaker, job)."""
         self._order = itertools.count()
-        self._timers: dict[_Job, asyncio.TimerHandle] = {}
+        self._timer: asyncio.TimerHandle | asyncio.Handle | None = None
+        self._timer_due = 0.0
         self._loop: asyncio.AbstractEventLoop | None = None
         self._closed = False
         self.counters = SchedulerCounters()
@@ -143,9 +147,9 @@ class QueueingEngine:
 
     def close(self) -> None:
         self._closed = True
-        for timer in self._timers.values():
-            timer.cancel()
-        self._timers.clear()
+        if self._timer is not None:
+            self._timer.cancel()
+            self._timer = None
 
     # the queue ---------------------------------------------------------------------------
     def _start(self, job: _Job, at: float) -> None:
@@ -161,7 +165,7 @@ class QueueingEngine:
         self.counters.max_running_seen = max(self.counters.max_running_seen, len(self._in_service))
         # The first token once the app has started the reply (submit returns first).
         self._loop.call_soon(self._first_token, job)
-        self._timers[job] = self._loop.call_later(max(0.0, job.ends - self._clock()), self._on_timer)
+        self._arm()
 
     def _first_token(self, job: _Job) -> None:
         sequence = job.sequence
@@ -170,16 +174,37 @@ class QueueingEngine:
         if sequence.output_tokens > 1:
             self._emit(sequence)
 
+    def _arm(self) -> None:
+        """One timer, for the earliest end; it wakes a little early and then polls the loop,
+        because event-loop timers have millisecond granularity (see engine.py)."""
+        assert self._loop is not None
+        if self._closed or not self._in_service:
+            return
+        due = self._in_service[0][0]
+        if self._timer is not None and self._timer_due <= due:
+            return
+        if self._timer is not None:
+            self._timer.cancel()
+        self._timer_due = due
+        early = due - self._clock() - _WAKE_EARLY_S
+        if early > 0:
+            self._timer = self._loop.call_later(early, self._on_timer)
+        else:
+            self._timer = self._loop.call_soon(self._on_timer)
+
     def _on_timer(self) -> None:
-        if not self._closed:
-            self._retire_until(self._clock())
+        self._timer = None
+        if self._closed:
+            return
+        self._retire_until(self._clock())
+        self._arm()
 
     def _retire_until(self, now: float) -> None:
         """End, in time order, every service whose exact end is not later than ``now``."""
         while self._in_service and self._in_service[0][0] <= now:
-            end, _, job = heapq.heappop(self._in_service)
-            self._timers.pop(job, None)
-            self._advance(end)
+            end = self._in_service[0][0]
+            self._advance(end)  # the area up to the end counts this job as still in the system
+            _, _, job = heapq.heappop(self._in_service)
             self._completions += 1
             self.counters.completed += 1
             self.pacing_error_us.add(round((now - end) * 1e6))

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import socket
@@ -174,7 +175,7 @@ def test_prometheus_label_values_are_escaped(reports: dict[Verdict, GateReport])
     """Backslash, double quote and line feed are escaped in label values (Prometheus text
     exposition format, "Text format details")."""
     report = reports[Verdict.PASS]
-    odd = GateReport(**{**{f: getattr(report, f) for f in report.__slots__}, "target_name": 'a "b"\\c\nd'})  # type: ignore[attr-defined]
+    odd = dataclasses.replace(report, target_name='a "b"\\c\nd')
     parsed = metrics(prometheus_text(odd))
     assert parsed["loadrun_gate_exit_code"][0][0]["target"] == 'a "b"\\c\nd'
 

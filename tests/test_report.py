@@ -164,6 +164,10 @@ def test_capacity_folder_alone_and_unreadable_capacity_files(tmp_path: Path) -> 
     assert all(section_id in page.ids for section_id in SECTION_IDS)
     assert page.tags.get("svg", 0) == 1
     assert "Add a replica at 9." in " ".join(page.text)
+    assert ">fit<" in render_report(tmp_path)  # the fitted USL curve is drawn on a concurrency axis
+    on_rate = capacity_json() | {"axis": "rate"}
+    (tmp_path / "capacity.json").write_text(json.dumps(on_rate), encoding="utf-8")
+    assert ">fit<" not in render_report(tmp_path)  # ... and not on a rate axis, where it means nothing
     (tmp_path / "capacity.json").write_text(json.dumps({"steps": "not a list", "fits": 3}), encoding="utf-8")
     assert "holds no steps this report can read" in render_report(tmp_path)
 

@@ -66,7 +66,7 @@ def _throughput_figure(data: Mapping[str, Any], steps: Sequence[Mapping[str, Any
     colours = [_OVER if s["verdict"] == "over" else _WITHIN for s in steps]
     axes.scatter(loads, rates, c=colours, zorder=3, label="measured step (red: breaks an SLO)")
     usl = (data.get("fits") or {}).get("usl")
-    if usl and usl.get("curve"):
+    if usl and usl.get("curve") and data.get("axis", "concurrency") == "concurrency":
         curve = usl["curve"]
         axes.plot(
             curve["loads"],
@@ -100,14 +100,14 @@ def _latency_figure(data: Mapping[str, Any], steps: Sequence[Mapping[str, Any]])
         axes = figure.add_subplot(len(panels), 1, row)
         metric, _, percentile = key.partition("_")
         column = f"{percentile}_ms"
-        points = [(s["load"], s["latency"][metric].get(column), s["verdict"]) for s in steps]
+        points = [(s["load"], s["latency"][metric].get(column)) for s in steps]
         points = [p for p in points if p[1] is not None]
         axes.scatter(
             [p[0] for p in points],
             [p[1] for p in points],
-            c=[_OVER if p[2] == "over" else _WITHIN for p in points],
+            c=[_OVER if limit is not None and p[1] > limit else _WITHIN for p in points],
             zorder=3,
-            label=f"measured {metric} {percentile}",
+            label=f"measured {metric} {percentile}" + (" (red: over this SLO)" if limit is not None else ""),
         )
         if key in curves:
             axes.plot(
@@ -139,4 +139,6 @@ def _mark_capacity(axes: Axes, data: Mapping[str, Any]) -> None:
 
 
 def _axis_label(data: Mapping[str, Any]) -> str:
-    return "requests in flight (concurrency)" if data.get("axis", "concurrency") == "concurrency" else "load"
+    if data.get("axis", "concurrency") == "concurrency":
+        return "requests in flight (concurrency)"
+    return "arrival rate offered (requests / s)"

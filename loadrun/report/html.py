@@ -347,19 +347,23 @@ def _capacity_view(data: Mapping[str, Any]) -> dict[str, Any] | None:
     fits = fits if isinstance(fits, Mapping) else {}
     usl = fits.get("usl")
     usl = usl if isinstance(usl, Mapping) else fits
-    fitted = _usl_curve(usl, loads) if loads else None
+    # The Universal Scalability Law is a law of concurrency: its curve means nothing on a rate axis.
+    fitted = _usl_curve(usl, loads) if loads and load_label == "concurrency" else None
     plot = (
         plots.capacity_curves(loads, throughput, latency, fitted, load_label, _capacity_markers(data))
         if loads
         else None
     )
     capacity = data.get("capacity")
-    facts = [
-        (str(key), _fmt_number(value))
-        for source in (data, capacity if isinstance(capacity, Mapping) else {})
-        for key, value in source.items()
-        if _is_scalar(value) and key not in ("kind", "format_version", "run_folder")
-    ]
+    facts: dict[str, str] = {}
+    for source in (data, capacity if isinstance(capacity, Mapping) else {}):
+        for key, value in source.items():
+            if (
+                _is_scalar(value)
+                and value is not None
+                and key not in ("kind", "format_version", "run_folder")
+            ):
+                facts.setdefault(str(key), _fmt_number(value))
     columns = [load_label, "requests/s", *latency, "verdict"]
     table = [
         [
@@ -377,7 +381,7 @@ def _capacity_view(data: Mapping[str, Any]) -> dict[str, Any] | None:
         )
     return {
         "plot": plot,
-        "facts": facts[:20],
+        "facts": list(facts.items())[:20],
         "advice": _advice_lines(data.get("advice")),
         "table_keys": columns,
         "table": table,

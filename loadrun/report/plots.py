@@ -122,15 +122,23 @@ def latency_cdfs(samples: Mapping[str, Mapping[str, Sequence[float] | np.ndarray
             ax.set_ylabel("share at or below")
             ax.set_ylim(0, 1.02)
             if _wide_range(samples, metric):
-                ax.set_xscale("log")
+                _plain_log_axis(ax)
             if ax.has_data():
-                ax.legend(loc="lower right", frameon=False)
+                ax.legend(loc="best", frameon=False)
             else:
                 ax.text(0.5, 0.5, "no samples", ha="center", va="center", transform=ax.transAxes)
         for panel in range(len(metrics), rows * cols):
             axes[panel // cols][panel % cols].set_visible(False)
         figure.tight_layout()
         return _svg(figure)
+
+
+def _plain_log_axis(ax: Any) -> None:
+    """A log x axis labelled with plain numbers at 1, 2 and 5 of each decade ("20", not "2x10^1")."""
+    ax.set_xscale("log")
+    ax.xaxis.set_major_locator(matplotlib.ticker.LogLocator(subs=(1.0, 2.0, 5.0)))
+    ax.xaxis.set_major_formatter(matplotlib.ticker.FuncFormatter(lambda value, _pos: f"{value:g}"))
+    ax.xaxis.set_minor_formatter(matplotlib.ticker.NullFormatter())
 
 
 def _wide_range(samples: Mapping[str, Mapping[str, Any]], metric: str) -> bool:
@@ -259,13 +267,25 @@ def capacity_curves(
     with plt.rc_context(_RC):
         figure, axes = _figure(9.0, 3.2, 1, 2)
         left, right = axes[0][0], axes[0][1]
+        order = sorted(range(len(loads)), key=lambda i: loads[i])
+        loads = [loads[i] for i in order]
+        throughput = [throughput[i] for i in order]
+        latency = {name: [values[i] for i in order] for name, values in latency.items()}
+        # Fits and markers are drawn only over the measured range (and a little past it): a
+        # peak predicted far beyond it would squeeze the measurements into one corner.
+        shown_max = 1.5 * max(loads) if loads else 0.0
         points = [(x, y) for x, y in zip(loads, throughput, strict=True) if y is not None]
         if points:
             xs, ys = zip(*points, strict=True)
             left.plot(xs, ys, "o", color=color_for(0), label="measured")
         if fitted is not None:
-            left.plot(fitted[0], fitted[1], "-", color=color_for(1), label="fit")
+            kept = [(x, y) for x, y in zip(*fitted, strict=True) if x <= shown_max]
+            if kept:
+                fit_x, fit_y = zip(*kept, strict=True)
+                left.plot(fit_x, fit_y, "-", color=color_for(1), label="fit")
         for label, value in (markers or {}).items():
+            if not 0 < value <= shown_max:
+                continue
             left.axvline(value, color="#555555", linestyle=":", linewidth=1.0)
             left.text(
                 value, 0.02, f" {label}", rotation=90, va="bottom", transform=left.get_xaxis_transform()

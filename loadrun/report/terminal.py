@@ -256,6 +256,17 @@ def _fmt(value: Any) -> str:
     return str(value)
 
 
+_COMPARISON_COLUMNS = (
+    "requests",
+    "TTFT p50",
+    "TTFT p90",
+    "ITL p50",
+    "E2E p50",
+    "E2E p90",
+    "req/s",
+    "failed",
+    "tokens per answer",
+)
 _VERDICT_COLORS = {"faster": "green", "slower": "red", "no difference": "dim", "mixed": "yellow"}
 
 
@@ -263,6 +274,7 @@ def render_comparison(data: dict[str, Any], out: Console | None = None) -> None:
     """A comparison: per load level the targets side by side, then one verdict per pair."""
     out = out or console()
     profile = data.get("profile", {}).get("name", "workload")
+    currency = next((t["prices"]["currency"] for t in data.get("targets", []) if t.get("prices")), "USD")
     out.print(
         f"[bold]{profile}[/] on {len(data.get('targets', []))} targets, {data['settings']['rounds']} rounds"
     )
@@ -270,10 +282,10 @@ def render_comparison(data: dict[str, Any], out: Console | None = None) -> None:
         table = Table(
             title=f"concurrency {level['concurrency']} (latency in ms)", title_justify="left", show_edge=False
         )
-        for column in ("target", "requests", "ttft p50", "ttft p90", "itl p50", "e2e p50", "e2e p90"):
-            table.add_column(column, justify="left" if column == "target" else "right", no_wrap=True)
-        for column in ("req/s", "failed", "tokens/answer", "per 1,000 req"):
-            table.add_column(column, justify="right", no_wrap=True)
+        table.add_column("target", no_wrap=True)
+        for column in _COMPARISON_COLUMNS:
+            table.add_column(column, justify="right")
+        table.add_column(f"{currency} per 1,000 requests", justify="right")
         for name, agg in level["targets"].items():
             latency = agg.get("latency", {})
             cost = agg.get("cost")
@@ -289,7 +301,7 @@ def render_comparison(data: dict[str, Any], out: Console | None = None) -> None:
                 _fmt(agg["throughput"]["requests_per_s"]),
                 f"{share:.1%}" if share is not None else "-",
                 _fmt(agg["tokens"].get("output_mean")),
-                f"{cost['per_1000_requests']:.4f} {cost['currency']}"
+                f"{cost['per_1000_requests']:.4f}"
                 if cost and cost.get("per_1000_requests") is not None
                 else "-",
             )
@@ -322,7 +334,8 @@ def render_capacity(data: dict[str, Any], out: Console | None = None) -> None:
     )
     slo_keys = [slo["key"] for slo in data.get("slos", [])]
     table = Table(title="load steps", title_justify="left", show_edge=False, pad_edge=False, box=box.SIMPLE)
-    for column in ("#", "phase", "in flight", "seconds", "requests", "req/s", "out tok/s"):
+    load_column = "in flight" if data.get("axis", "concurrency") == "concurrency" else "offered/s"
+    for column in ("#", "phase", load_column, "seconds", "requests", "req/s", "out tok/s"):
         table.add_column(column, justify="right")
     for key in slo_keys:
         table.add_column(key.replace("_", " "), justify="right")
@@ -356,7 +369,9 @@ def render_capacity(data: dict[str, Any], out: Console | None = None) -> None:
         if capacity.get("low") is not None and capacity.get("high") is not None:
             band = f" (90 % band {capacity['low']:.1f}-{capacity['high']:.1f})"
         out.print(
-            f"[bold]capacity per replica: {capacity['load']:.1f} in flight{band}[/], limited by "
+            f"[bold]capacity per replica: {capacity['load']:.3g} "
+            f"{'in flight' if data.get('axis', 'concurrency') == 'concurrency' else 'requests/s offered'}"
+            f"{band}[/], limited by "
             f"{capacity['limited_by']}"
         )
     else:

@@ -43,8 +43,10 @@ def trend_svg(rows: Sequence[TrendRow], labels: Sequence[str], title: str) -> st
         f"<title>{escape(title)}</title>",
         f'<rect x="0" y="0" width="{WIDTH}" height="{height}" fill="white"/>',
         f'<text x="{LEFT}" y="22" font-size="15" font-weight="bold">{escape(title)}</text>',
-        f'<circle cx="{WIDTH - RIGHT - 110}" cy="18" r="6" fill="none" stroke="{REGRESSION_COLOUR}" '
-        f'stroke-width="2"/><text x="{WIDTH - RIGHT - 98}" y="22">regression</text>',
+        f'<circle cx="{WIDTH - RIGHT - 200}" cy="18" r="6" fill="none" stroke="{REGRESSION_COLOUR}" '
+        f'stroke-width="2"/><text x="{WIDTH - RIGHT - 188}" y="22">regression</text>',
+        f'<circle cx="{WIDTH - RIGHT - 90}" cy="18" r="3.5" fill="white" stroke="black"/>'
+        f'<text x="{WIDTH - RIGHT - 80}" y="22">invalid run</text>',
     ]
     for number, label in enumerate(labels):
         top = TOP + number * (PANEL_HEIGHT + PANEL_GAP)

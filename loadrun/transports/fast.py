@@ -10,11 +10,15 @@ bytes arrived; a timestamp taken in the read callback would carry that delay. On
 plain-TCP connections therefore ask the kernel to stamp each read (SO_TIMESTAMPNS) and use
 that arrival time; TLS connections (stdlib ssl through an asyncio Protocol) and other
 platforms stamp with ``perf_counter_ns()`` in the read callback.
+
+Time limits are the client's (``loadrun.timeouts``): it cancels ``send``, which closes the
+connection; only the connect limit lives here.
 """
 
 from __future__ import annotations
 
 import asyncio
+import os
 import socket
 import ssl
 import struct
@@ -33,6 +37,7 @@ KERNEL_STAMPS_AVAILABLE = sys.platform.startswith("linux")
 _READ_SIZE = 256 * 1024
 _STAMP = struct.Struct("qq")
 _CLOCK_REFRESH_NS = 1_000_000_000
+_ERROR_SWEEP_S = 0.1
 
 
 def render_request(request: HttpRequest) -> bytes:
@@ -205,16 +210,85 @@ class _ProtocolConnection(_Connection, asyncio.Protocol):
         self.closed = True
 
 
+class _ErrorSweep:
+    """Finds stamped sockets whose peer reset them while nobody will tell us.
+
+    uvloop (libuv) stops watching a descriptor for good when epoll reports an error such as
+    a reset, after one last read callback; if data was queued before the reset, that read
+    returns the data and not the error, and the socket falls silent. Checking SO_ERROR on
+    every read would cost a system call per event, so the sockets with a request in flight
+    are checked every ``_ERROR_SWEEP_S`` instead (a few microseconds per socket and second).
+    """
+
+    def __init__(self) -> None:
+        self._busy: set[_StampedSocketConnection] = set()
+        self._timer: asyncio.TimerHandle | None = None
+
+    def add(self, connection: _StampedSocketConnection) -> None:
+        self._busy.add(connection)
+        if self._timer is None:
+            self._timer = asyncio.get_running_loop().call_later(_ERROR_SWEEP_S, self._sweep)
+
+    def discard(self, connection: _StampedSocketConnection) -> None:
+        self._busy.discard(connection)
+
+    def _sweep(self) -> None:
+        self._timer = None
+        for connection in list(self._busy):
+            connection.check_error()
+        if self._busy:
+            self._timer = asyncio.get_running_loop().call_later(_ERROR_SWEEP_S, self._sweep)
+
+    def close(self) -> None:
+        if self._timer is not None:
+            self._timer.cancel()
+            self._timer = None
+        self._busy.clear()
+
+
 class _StampedSocketConnection(_Connection):
     """Reads a plain TCP socket with recvmsg and uses the kernel's arrival stamp."""
 
-    def __init__(self, sock: socket.socket, loop: asyncio.AbstractEventLoop, clock: KernelClock) -> None:
+    def __init__(
+        self, sock: socket.socket, loop: asyncio.AbstractEventLoop, clock: KernelClock, sweep: _ErrorSweep
+    ) -> None:
         super().__init__()
         self._sock = sock
         self._loop = loop
         self._clock = clock
+        self._sweep = sweep
         self._fd = sock.fileno()
         loop.add_reader(self._fd, self._on_readable)
+
+    async def exchange(self, raw: bytes, consumer: ResponseConsumer) -> None:
+        self._sweep.add(self)
+        try:
+            await super().exchange(raw, consumer)
+        finally:
+            self._sweep.discard(self)
+
+    def check_error(self) -> None:
+        """Called by the sweep: a pending socket error ends the exchange (after any queued data)."""
+        if self.closed:
+            return
+        try:
+            error = self._sock.getsockopt(socket.SOL_SOCKET, socket.SO_ERROR)
+        except OSError as exc:
+            error = exc.errno or 0
+        if not error:
+            return
+        view = self._clock.read_buffer
+        while not self.closed:  # the error is consumed: what is left reads as data, then EOF
+            try:
+                size = self._sock.recv_into(view)
+            except OSError:
+                break
+            if not size:
+                break
+            self._feed(bytes(view[:size]), perf_counter_ns())
+        if not self.closed:
+            self._shut()
+            self._lost(OSError(error, os.strerror(error)))
 
     def _on_readable(self) -> None:
         # recvmsg_into a buffer kept by the clock: plain recvmsg allocates its whole
@@ -286,6 +360,7 @@ class FastTransport:
         self._idle: dict[Endpoint, list[_Connection]] = {}
         self._kernel_stamps = kernel_stamps and KERNEL_STAMPS_AVAILABLE
         self._clock = KernelClock() if self._kernel_stamps else None
+        self._sweep = _ErrorSweep()
 
     def receive_clock(self, endpoint: Endpoint) -> str:
         """Where receive times for this endpoint come from: "kernel" or "application"."""
@@ -310,6 +385,7 @@ class FastTransport:
             for connection in connections:
                 connection.close()
         self._idle.clear()
+        self._sweep.close()
 
     def _take_idle(self, endpoint: Endpoint) -> _Connection | None:
         pool = self._idle.get(endpoint)
@@ -365,7 +441,7 @@ class FastTransport:
             except BaseException:
                 sock.close()
                 raise
-            return _StampedSocketConnection(sock, loop, clock)
+            return _StampedSocketConnection(sock, loop, clock, self._sweep)
         raise last_error or OSError(f"no address for {endpoint.host}")
 
     def _ssl_context(self) -> ssl.SSLContext:
