@@ -66,6 +66,7 @@ from loadrun.cost import ReplicaPrice, TokenPrices
 from loadrun.errors import TargetError, UsageError
 from loadrun.fits import MonotoneCurve
 from loadrun.profile import Profile
+from loadrun.record import Record
 from loadrun.runner import (
     DEFAULT_MOCK_ENGINE,
     MeasureSettings,
@@ -102,6 +103,8 @@ WATCH_INTERVAL_S = 0.25
 LOAD_AXES = ("concurrency", "rate")
 """Requests in flight (closed loop), or requests per second offered (open loop, Poisson)."""
 SCREEN_REQUESTS = 20
+HEAVY_ERRORS_AFTER = 20
+"""Requests a step needs before heavy errors end it."""
 """Requests a growing step needs before it may end as clearly within every SLO."""
 
 
@@ -344,11 +347,14 @@ class _Search:
         guess = min(predictions) + margin if predictions else (log_lo + log_hi) / 2
         span = log_hi - log_lo
         guess = min(max(guess, log_lo + span / 10), log_hi - span / 10)
-        if self.settings.axis == "concurrency":
-            probe = max(lo.load + 1, float(math.floor(math.exp(guess))))
-        else:
-            probe = self._as_load(math.exp(guess))
-        return probe if lo.load < probe < hi.load else None
+        for target in (guess, (log_lo + log_hi) / 2):
+            if self.settings.axis == "concurrency":
+                probe = max(lo.load + 1, float(math.floor(math.exp(target))))
+            else:
+                probe = self._as_load(math.exp(target))
+            if lo.load < probe < hi.load:
+                return probe
+        return None
 
     def _crossings(self, limit_to: tuple[float, float]) -> dict[str, float | None]:
         steps = usable_by_load(self.steps)
@@ -484,10 +490,20 @@ class _Search:
         summary: dict[str, Any] | None = None
         folder: str | None = None
         failure: str | None = None
+        heavy = self.settings.heavy_error_share
+
+        def observe(record: Record) -> None:
+            samples.add(record)
+            # Checked per request, not per watch: failures can arrive thousands a second.
+            count = samples.count
+            if count >= HEAVY_ERRORS_AFTER and samples.failed_total >= heavy * count and not stop.is_set():
+                reason[0] = "heavy errors"
+                stop.set()
+
         async with anyio.create_task_group() as group:
             group.start_soon(self._watch, samples, stop, reason, phase)
             try:
-                result = await measure_async(measure_settings, stop=stop, observe=samples.add)
+                result = await measure_async(measure_settings, stop=stop, observe=observe)
                 summary, folder = result.summary, str(result.folder) if result.folder else None
             except TargetError as exc:
                 failure = f"{type(exc).__name__}: {exc}"
@@ -523,7 +539,7 @@ class _Search:
         share = stats.error_share
         step.heavy_errors = share is not None and share >= self.settings.heavy_error_share
         if step.heavy_errors:
-            top = ", ".join(f"{k} ({v})" for k, v in samples.errors.most_common(2))
+            top = ", ".join(f"{v} x {k}" for k, v in samples.errors.most_common(2))
             step.over.append(f"heavy errors ({(share or 1.0) * 100:.0f} % failed: {top or 'no answer'})")
         if step.failure is None and not stats.measured:
             step.failure = f"no request finished within the step at {self._text(step.load)}"
@@ -536,7 +552,6 @@ class _Search:
         limit: once steady with every value below ``NEAR_LIMIT`` of its limit, it ends.
         """
         policy = self.settings.step
-        heavy = self.settings.heavy_error_share
         while not stop.is_set():
             await anyio.sleep(WATCH_INTERVAL_S)
             if (over := self._over_budget_now(samples)) is not None:
@@ -548,11 +563,6 @@ class _Search:
                 continue
             if policy.max_requests is not None and stats.measured + stats.truncated >= policy.max_requests:
                 reason[0] = "step request cap"
-                stop.set()
-                return
-            share = stats.error_share
-            if stats.measured >= 20 and share is not None and share >= heavy:
-                reason[0] = "heavy errors"
                 stop.set()
                 return
             measured_s = (time.perf_counter_ns() - stats.first_send_ns) / 1e9

@@ -54,6 +54,9 @@ class _Limit:
     low: float | None = None
     high: float | None = None
     detail: str = ""
+    bracket: tuple[float, float] | None = None
+    """The measured loads on either side: the highest within the limit below it, the lowest
+    past it above (the band covers sampling noise; this, how far apart the steps were)."""
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -63,6 +66,7 @@ class _Limit:
             "where": self.where,
             "low": self.low,
             "high": self.high,
+            "bracket": list(self.bracket) if self.bracket is not None else None,
             "detail": self.detail,
         }
 
@@ -140,6 +144,11 @@ class Analysis:
             )
             if crossing.where == "within" and isinstance(slo, PercentileSlo):
                 limit.low, limit.high = self._crossing_band(slo, [s for s, _ in pairs])
+            if crossing.where == "within":
+                below = [s.load for s, v in pairs if v <= limit_of(slo) and s.load <= crossing.load]
+                above = [s.load for s, v in pairs if v > limit_of(slo) and s.load >= crossing.load]
+                if below and above:
+                    limit.bracket = (max(below), min(above))
             limits.append(limit)
         saturation = self._saturation_limit()
         if saturation is not None:
@@ -273,6 +282,9 @@ class Analysis:
                 band_low = min(limit.load if limit.low is None else limit.low for limit in within)
                 band_high = min(limit.load if limit.high is None else limit.high for limit in within)
             reason = f"{binding.label} is reached at {self._text(binding.load)}"
+            if binding.bracket is not None:
+                low_step, high_step = binding.bracket
+                reason += f" (measured within it at {low_step:g}, past it at {high_step:g})"
             if binding.detail:
                 reason += f" ({binding.detail})"
             return base | {
@@ -283,6 +295,7 @@ class Analysis:
                 "high": band_high,
                 "limited_by": binding.label,
                 "limit_kind": binding.kind,
+                "bracket": list(binding.bracket) if binding.bracket is not None else None,
                 "reason": reason,
                 **self._rates_at(binding.load),
             }

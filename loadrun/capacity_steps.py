@@ -207,6 +207,8 @@ class StepSamples:
         self._gaps = np.zeros(0, dtype=np.int64)
         self.errors: Counter[str] = Counter()
         self.tokens_total = 0
+        self.failed_total = 0
+        """Failed requests, warm-up included (a target that fails at once fails fast)."""
         self.cost_total = 0.0
 
     def add(self, record: Record) -> None:
@@ -233,6 +235,7 @@ class StepSamples:
             )
         )
         self._new_gaps.extend(gaps)
+        self.failed_total += not ok
         self.tokens_total += input_tokens + record.output_tokens
         if self.prices is not None:
             self.cost_total += self.prices.request_cost(input_tokens, record.output_tokens)

@@ -390,6 +390,9 @@ def gate_command(
         render_gate(report.to_json())
     for warning in deliver(report, outputs):
         say(f"Warning: {warning}")
+    if report.interrupted_by:  # outputs are written, but a stopped run exits as `measure` does
+        say(f"Interrupted by {report.interrupted_by}: the run was judged invalid.")
+        raise typer.Exit(EXIT_INTERRUPTED)
     raise typer.Exit(report.exit_code)
 
 

@@ -217,6 +217,9 @@ class GateReport:
     """A few figures of the run: requests, failures, window, generator health."""
     history_path: str | None = None
 
+    interrupted_by: str | None = None
+    """The signal that stopped the run (SIGINT, SIGTERM), if one did."""
+
     @property
     def exit_code(self) -> int:
         return self.verdict.exit_code
@@ -237,6 +240,7 @@ class GateReport:
             "confidence": self.confidence,
             "rules": [result.to_json() for result in self.rules],
             "measured": dict(self.measured),
+            "interrupted_by": self.interrupted_by,
             "history": self.history_path,
             "pages": _pages(self.run_folder),
             "loadrun_version": __version__,
@@ -353,7 +357,10 @@ def validity_problems(summary: Mapping[str, Any], settings: GateSettings) -> lis
         )
     if (summary.get("generator") or {}).get("limited"):
         problems.append("generator-limited: the load generator fell behind, its timings are not trustworthy")
-    if summary.get("interrupted"):
+    interrupt = summary.get("interrupt") or {}
+    if interrupt.get("signal"):
+        problems.append(f"interrupted by {interrupt['signal']}: the run did not finish")
+    elif summary.get("interrupted"):
         problems.append("interrupted: the run did not finish")
     if summary.get("aborted"):
         problems.append(f"stopped early: {summary['aborted']}")
@@ -372,6 +379,7 @@ def _report_for(config: Mapping[str, Any], summary: Mapping[str, Any], settings:
     requests = summary.get("requests") or {}
     generator = summary.get("generator") or {}
     return GateReport(
+        interrupted_by=(summary.get("interrupt") or {}).get("signal"),
         verdict=Verdict.INVALID,
         reasons=[],
         rules=[],

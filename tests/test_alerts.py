@@ -310,3 +310,17 @@ def test_cli_refuses_an_output_folder_that_does_not_exist(tmp_path: Path, regres
     )  # fmt: skip
     assert result.returncode == 2 and result.stderr.strip().splitlines()[-1].startswith("UsageError:")
     assert not (tmp_path / "h.sqlite3").exists()  # nothing ran
+
+
+def test_cli_run_stopped_by_a_signal_writes_its_outputs_and_exits_130(tmp_path: Path) -> None:
+    """130 for a stopped run, as `loadrun measure` exits (128 + SIGINT, the shell convention)."""
+    summary, config = synthetic_run(5)
+    summary["interrupted"] = True
+    summary["interrupt"] = {"signal": "SIGTERM", "grace_s": 5.0}
+    folder = write_run_folder(tmp_path / "runs", summary, config)
+    result = loadrun(
+        "gate", "--from-run", str(folder), "--history", "h.sqlite3", "--junit", "g.xml", cwd=tmp_path
+    )
+    assert result.returncode == 130, result.stderr
+    assert "INVALID" in result.stdout and "Interrupted by SIGTERM" in result.stderr
+    assert ET.parse(tmp_path / "g.xml").getroot().find("testsuite").get("errors") == "1"  # type: ignore[union-attr]

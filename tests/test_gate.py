@@ -239,3 +239,14 @@ def test_an_unreachable_target_is_an_invalid_run(settings: GateSettings) -> None
     assert report.verdict is Verdict.INVALID and report.exit_code == 2
     assert "TargetUnreachable" in report.reasons[0]
     assert report.target_name == "down-desk" and report.run_id is None
+
+
+def test_a_run_stopped_by_a_signal_is_invalid_and_says_which(settings: GateSettings) -> None:
+    gate_summary(*run(1), settings)
+    summary, config = run(2)
+    summary["interrupted"] = True
+    summary["interrupt"] = {"signal": "SIGTERM", "grace_s": 5.0}
+    report = gate_summary(summary, config, settings)
+    assert report.verdict is Verdict.INVALID and report.interrupted_by == "SIGTERM"
+    assert "interrupted by SIGTERM" in report.reasons[0]
+    assert report.to_json()["interrupted_by"] == "SIGTERM"
