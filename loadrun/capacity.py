@@ -407,32 +407,58 @@ class _Search:
         return load_text(load, self.settings.axis)
 
     # budget --------------------------------------------------------------------------------
+    def _in_flight_reserve(self, load: float) -> float:
+        """Requests that may still finish after a step is told to stop (they drain)."""
+        if self.settings.axis == "concurrency":
+            return load
+        return max(1.0, 2.0 * load * (self._expected_e2e_s(load) or 1.0))
+
     def _budget_left(self, load: float) -> str | None:
+        """Why no further step fits in the budget, or None. A step must be able to finish its
+        requests in flight and still get a few measured ones in."""
         budget = self.settings.budget
         spent = self.spent
+        needed = self._in_flight_reserve(load) + SCREEN_REQUESTS
+        request = self.settings.profile.request
         if spent.steps >= budget.max_steps:
             return f"the step budget ({budget.max_steps}) is spent"
-        if budget.max_requests is not None and spent.requests >= budget.max_requests:
+        if budget.max_requests is not None and spent.requests + needed > budget.max_requests:
             return f"the request budget ({budget.max_requests}) is spent"
-        if budget.max_tokens is not None and spent.tokens >= budget.max_tokens:
+        tokens = needed * (request.input_tokens + request.output_tokens)
+        if budget.max_tokens is not None and spent.tokens + tokens > budget.max_tokens:
             return f"the token budget ({budget.max_tokens}) is spent"
-        if budget.max_cost is not None and spent.cost >= budget.max_cost:
-            return f"the money budget ({budget.max_cost:g}) is spent"
+        prices = self.settings.target_prices
+        if budget.max_cost is not None and prices is not None:
+            cost = needed * prices.request_cost(request.input_tokens, request.output_tokens)
+            if spent.cost + cost > budget.max_cost:
+                return f"the money budget ({budget.max_cost:g}) is spent"
         if budget.max_seconds is not None:
-            needed = self.settings.step.min_seconds + self._warmup_for(load)
-            if spent.seconds() + needed > budget.max_seconds:
+            seconds = self.settings.step.min_seconds + self._warmup_for(load)
+            if spent.seconds() + seconds > budget.max_seconds:
                 return f"the time budget ({budget.max_seconds:g} s) is spent"
         return None
 
-    def _over_budget_now(self, samples: StepSamples) -> str | None:
+    def _over_budget_now(self, samples: StepSamples, reserve: float) -> str | None:
+        """Whether the step must stop now so that what is still in flight stays in the budget."""
         budget = self.settings.budget
         spent = self.spent
-        if budget.max_requests is not None and spent.requests + samples.count >= budget.max_requests:
+        request = self.settings.profile.request
+        if (
+            budget.max_requests is not None
+            and spent.requests + samples.count + reserve >= budget.max_requests
+        ):
             return "request budget"
-        if budget.max_tokens is not None and spent.tokens + samples.tokens_total >= budget.max_tokens:
+        tokens = reserve * (request.input_tokens + request.output_tokens)
+        if (
+            budget.max_tokens is not None
+            and spent.tokens + samples.tokens_total + tokens >= budget.max_tokens
+        ):
             return "token budget"
-        if budget.max_cost is not None and spent.cost + samples.cost_total >= budget.max_cost:
-            return "money budget"
+        prices = self.settings.target_prices
+        if budget.max_cost is not None and prices is not None:
+            cost = reserve * prices.request_cost(request.input_tokens, request.output_tokens)
+            if spent.cost + samples.cost_total + cost >= budget.max_cost:
+                return "money budget"
         if budget.max_seconds is not None and spent.seconds() >= budget.max_seconds:
             return "time budget"
         return None
@@ -492,12 +518,20 @@ class _Search:
         failure: str | None = None
         heavy = self.settings.heavy_error_share
 
+        reserve = self._in_flight_reserve(load)
+
         def observe(record: Record) -> None:
             samples.add(record)
-            # Checked per request, not per watch: failures can arrive thousands a second.
+            if stop.is_set():
+                return
+            # Checked per request, not per watch: failures can arrive thousands a second, and
+            # a budget must hold to the request.
             count = samples.count
-            if count >= HEAVY_ERRORS_AFTER and samples.failed_total >= heavy * count and not stop.is_set():
+            if count >= HEAVY_ERRORS_AFTER and samples.failed_total >= heavy * count:
                 reason[0] = "heavy errors"
+                stop.set()
+            elif (over := self._over_budget_now(samples, reserve)) is not None:
+                reason[0] = over
                 stop.set()
 
         async with anyio.create_task_group() as group:
@@ -537,11 +571,15 @@ class _Search:
             if broken:
                 step.over.append(slo.label())
         share = stats.error_share
+        if share is None and samples.count:  # stopped in its warm-up: judge what did finish
+            share = samples.failed_total / samples.count
+            if share >= self.settings.heavy_error_share:
+                step.slo_values.update({s.key: share for s in self.slos if isinstance(s, ErrorShareSlo)})
         step.heavy_errors = share is not None and share >= self.settings.heavy_error_share
         if step.heavy_errors:
             top = ", ".join(f"{v} x {k}" for k, v in samples.errors.most_common(2))
             step.over.append(f"heavy errors ({(share or 1.0) * 100:.0f} % failed: {top or 'no answer'})")
-        if step.failure is None and not stats.measured:
+        elif step.failure is None and not stats.measured:
             step.failure = f"no request finished within the step at {self._text(step.load)}"
 
     async def _watch(self, samples: StepSamples, stop: anyio.Event, reason: list[str], phase: str) -> None:
@@ -554,7 +592,7 @@ class _Search:
         policy = self.settings.step
         while not stop.is_set():
             await anyio.sleep(WATCH_INTERVAL_S)
-            if (over := self._over_budget_now(samples)) is not None:
+            if (over := self._over_budget_now(samples, 0.0)) is not None:
                 reason[0] = over
                 stop.set()
                 return

@@ -239,7 +239,7 @@ class StepSamples:
         self.tokens_total += input_tokens + record.output_tokens
         if self.prices is not None:
             self.cost_total += self.prices.request_cost(input_tokens, record.output_tokens)
-        if record.in_window and not ok:
+        if not ok:
             self.errors[f"{record.outcome.value}: {(record.error or '')[:100]}".rstrip(": ")] += 1
 
     def table(self) -> tuple[IntArray, IntArray]:

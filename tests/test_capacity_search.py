@@ -238,3 +238,41 @@ def test_a_remote_target_needs_confirmation(tmp_path: Path) -> None:
     assert "Traceback" not in completed.stderr
     assert completed.stderr.strip().splitlines()[-1].startswith("UsageError: not confirmed")
     assert "Load only endpoints you own" in completed.stderr
+
+
+def test_the_rate_axis_searches_open_loop_arrivals(tmp_path: Path) -> None:
+    """Poisson arrivals at growing rates; capacity in requests/s offered, with the requests in
+    flight there by Little's law (L = lambda W, Little 1961)."""
+    engine = tmp_path / "rate.toml"
+    engine.write_text('model = "mock-rate"\nstep_base_ms = 5.0\ndecode_per_seq_ms = 0.5\nmax_running = 512\n')
+    result = find_capacity(
+        quick_settings(tmp_path, str(engine), axis="rate", start_load=20.0, slos=(parse_slo("tpot:p90=20"),))
+    )
+    data = result.data
+    assert data["axis"] == "rate"
+    assert all(step["concurrency"] is None and step["rate_per_s"] == step["load"] for step in data["steps"])
+    capacity = data["capacity"]
+    assert capacity["load"] is not None and capacity["load"] > 20.0
+    if capacity["found"]:
+        assert capacity["limited_by"] == "tpot p90 <= 20 ms"
+        # In flight = throughput x mean latency; latencies stay well under a second here.
+        assert 0 < capacity["concurrency"] < capacity["load"]
+    assert data["advice"]["scale_out_signal"] == "requests per second per replica"
+
+
+def test_a_request_budget_is_never_exceeded(tmp_path: Path) -> None:
+    """The search stops each step early enough that the requests still in flight fit."""
+    result = find_capacity(
+        quick_settings(
+            tmp_path,
+            "small-fast",
+            slos=(parse_slo("e2e:p99=60000"),),
+            budget=SearchBudget(max_steps=8, max_seconds=30, max_requests=150),
+        )
+    )
+    data = result.data
+    assert data["spent"]["requests"] <= 150
+    assert "request budget" in data["search_ended"] or any(
+        step["stop_reason"] == "request budget" for step in data["steps"]
+    )
+    assert data["capacity"]["load"]  # what was measured still gives an answer (a lower bound)
