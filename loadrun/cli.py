@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import sys
 from pathlib import Path
 from typing import Annotated, Any, NoReturn
@@ -882,15 +883,28 @@ def _replace_confirmed(settings: MeasureSettings) -> MeasureSettings:
 
 
 def _fail(kind: str, message: str, code: int) -> NoReturn:
-    console(stderr=True).print(f"{kind}: {message}", markup=False, highlight=False)
+    console(stderr=True).print(f"{kind}: {_one_line(message)}", markup=False, highlight=False)
     raise SystemExit(code)
+
+
+def _one_line(text: str) -> str:
+    """Errors quote the user's input, which may hold line breaks and control characters."""
+    if text.isprintable():
+        return text
+    return "".join(char if char.isprintable() else char.encode("unicode_escape").decode() for char in text)
+
+
+@functools.cache
+def _command_tree() -> Any:
+    # Built once per process: typer rebuilds it on every call otherwise (tens of ms each).
+    return typer.main.get_command(app)
 
 
 def main(argv: list[str] | None = None) -> Any:
     """Entry point: errors are handled once, here; a user's mistake never shows a traceback."""
     args = sys.argv[1:] if argv is None else argv
     try:
-        return app(args=args or ["--help"], standalone_mode=False)
+        return _command_tree().main(args=args or ["--help"], standalone_mode=False)
     except LoadrunError as exc:
         _fail(type(exc).__name__, str(exc), exc.exit_code)
     except (typer.Abort, KeyboardInterrupt):

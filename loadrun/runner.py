@@ -14,7 +14,7 @@ import contextlib
 import math
 import time
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
@@ -40,7 +40,7 @@ from loadrun.errors import TargetUnreachable, UsageError
 from loadrun.history import HISTORY_FILE, record_run
 from loadrun.interrupt import SignalStop, signals_stop
 from loadrun.monitor import LoopLagMonitor
-from loadrun.profile import OPEN_ARRIVALS, Profile
+from loadrun.profile import MAX_CONCURRENCY, OPEN_ARRIVALS, Profile
 from loadrun.prompts import ONE_TOKEN_PER_WORD, Calibration, calibrate_tokens
 from loadrun.record import Outcome, Record
 from loadrun.recorder import Recorder
@@ -134,11 +134,22 @@ class MeasureSettings:
         """Validate everything that needs no network; returns the plan (UsageError if bad)."""
         self.timeouts()
         self.retry_policy()
+        for item in fields(self):  # nan passes every "at least" check: refuse it (and inf) first
+            value = getattr(self, item.name)
+            if isinstance(value, float) and not math.isfinite(value):
+                raise UsageError(f"{item.name} must be a finite number, got {value}")
         for name in ("stop_grace_s", "time_limit_s"):
-            value = getattr(self, name)
-            if not math.isfinite(value) or value < 0:
-                raise UsageError(f"{name} must be a finite number >= 0, got {value}")
-        return self.plan()
+            if getattr(self, name) < 0:
+                raise UsageError(f"{name} must not be negative")
+        if self.concurrency is not None and self.concurrency > MAX_CONCURRENCY:
+            raise UsageError(f"concurrency {self.concurrency} is above the most allowed, {MAX_CONCURRENCY}")
+        plan = self.plan()
+        if self.target is not None:  # (the embedded mock is on loopback: no caps)
+            if isinstance(plan, ClosedLoopPlan):
+                check_remote_caps(self.target, concurrency=plan.concurrency, override=self.exceed_remote_caps)
+            else:
+                check_remote_caps(self.target, rate_per_s=plan.rate_per_s, override=self.exceed_remote_caps)
+        return plan
 
     def history_file(self) -> Path | None:
         if not self.record_history:
@@ -239,10 +250,6 @@ async def measure_async(
             raise UsageError(
                 f"{target.base_url} is not on this machine: confirm that you may load it (--yes)"
             )
-        if isinstance(plan, ClosedLoopPlan):
-            check_remote_caps(target, concurrency=plan.concurrency, override=settings.exceed_remote_caps)
-        else:
-            check_remote_caps(target, rate_per_s=plan.rate_per_s, override=settings.exceed_remote_caps)
         children = (int(mock_info["pid"]),) if mock_info else ()
         with signals_stop(stop, settings.stop_grace_s, children, enabled=settings.handle_signals) as signals:
             await _check_reachable(target, settings.connect_timeout_s)

@@ -146,8 +146,7 @@ def test_calibration_reaches_requested_input_lengths_on_the_mock(
         mock_engine=str(engine),
         record_history=False,
     )
-    result = anyio.run(_measure_collecting, settings, rows)
-    summary = result
+    summary = anyio.run(_measure_collecting, settings, rows)
     assert summary["requests"]["failed"] == 0
     fit = summary["input_calibration"]["fit"]
     assert fit["per_word"] == pytest.approx(tokens_per_word, rel=0.01)

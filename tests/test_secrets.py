@@ -1,7 +1,8 @@
 """A sentinel API key must never leave the process: not in any output stream, nor in any file.
 
-Every command runs as a real process with the key in an environment variable named by the
-target. The mock answers some requests with errors that quote the request's Authorization
+Every command runs with the key in an environment variable named by the target: those that
+send load as real processes (all they print is captured), those that only read and write
+files in this process. The mock answers some requests with errors that quote the request's Authorization
 header back (a careless server), so the key reaches loadrun from outside too and must be
 scrubbed before it lands in a record. Then every byte written under the test's folder and
 every stdout and stderr is searched for the key, plain and base64-encoded.

@@ -33,7 +33,10 @@ class Endpoint:
 
     @classmethod
     def parse(cls, base_url: str) -> Endpoint:
-        parts = urlsplit(base_url)
+        try:
+            parts = urlsplit(base_url)
+        except ValueError as exc:  # e.g. an unclosed IPv6 bracket
+            raise UsageError(f"base URL cannot be read ({exc}): {base_url!r}") from exc
         if parts.scheme not in ("http", "https") or not parts.hostname:
             raise UsageError(f"base URL must be http:// or https:// with a host: {base_url!r}")
         if parts.username or parts.password:
