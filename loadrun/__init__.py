@@ -37,11 +37,13 @@ from loadrun.protocol import ChatRequest
 from loadrun.record import Outcome, Record, TokenSource
 from loadrun.recorder import Recorder
 from loadrun.report.html import write_report
+from loadrun.retry import RetryPolicy, parse_retry_after
 from loadrun.runner import MeasureSettings, RunResult, measure, measure_async
 from loadrun.slo import Slo
 from loadrun.sse import EventStreamParser, ServerSentEvent
 from loadrun.target import Target
 from loadrun.targets import Prices, TargetsFile, TargetSpec, load_targets
+from loadrun.timeouts import Timeouts
 
 __all__ = [
     "AdviceSettings",
@@ -77,6 +79,7 @@ __all__ = [
     "ReplicaPrice",
     "RequestFailed",
     "RequestSpec",
+    "RetryPolicy",
     "Rule",
     "RunFilter",
     "RunResult",
@@ -90,6 +93,7 @@ __all__ = [
     "TargetSpec",
     "TargetUnreachable",
     "TargetsFile",
+    "Timeouts",
     "TokenPrices",
     "TokenSource",
     "UsageError",
@@ -110,6 +114,7 @@ __all__ = [
     "load_targets",
     "measure",
     "measure_async",
+    "parse_retry_after",
     "post_webhook",
     "run_closed_loop",
     "write_report",

@@ -47,7 +47,8 @@ __all__ = [
 REPORTED_PERCENTILES = (50.0, 90.0, 99.0)
 FAR_BELOW = 0.5
 """A step whose worst sample is below this share of a limit meets that SLO without waiting
-for a full confidence bound (common practice, no source): tails do not double within a step."""
+for a full confidence bound. A heuristic of ours (no source): it assumes the tail does not
+reach twice the worst of the samples seen."""
 MSER_BATCH = 5
 
 FloatArray = npt.NDArray[np.float64]

@@ -319,7 +319,9 @@ async def _run_level(
     try:
         calibration = await _calibration(settings, profile, client)
         config["input_calibration"] = calibration.describe()
-        workload = Workload(profile, calibration.fit, settings.context_window)
+        replayed = isinstance(plan, OpenLoopPlan) and isinstance(plan.arrivals, TraceArrivals)
+        speed = plan.arrivals.speed if isinstance(plan, OpenLoopPlan) and replayed else 1.0
+        workload = Workload(profile, calibration.fit, settings.context_window, think_scale=1 / speed)
         _refuse_impossible(workload, settings.context_window)
         if folder is not None:
             folder.write_json(CONFIG_FILE, config)

@@ -127,9 +127,15 @@ class Workload:
     """Conversations of a profile, for one target (its TokenFit and context window)."""
 
     def __init__(
-        self, profile: Profile, fit: TokenFit = ONE_TOKEN_PER_WORD, context_window: int | None = None
+        self,
+        profile: Profile,
+        fit: TokenFit = ONE_TOKEN_PER_WORD,
+        context_window: int | None = None,
+        think_scale: float = 1.0,
     ) -> None:
         self.profile = profile
+        self.think_scale = think_scale
+        """Multiplies session think times (a trace replayed at 2x speed halves them too)."""
         self.fit = fit
         self.context_window = context_window
         self.mix = profile.mix()
@@ -185,7 +191,9 @@ class Workload:
             max_tokens = (output_tokens if turn == 0 else None) or self._draw_tokens(
                 spec.output_distribution().draw_int, rng
             )
-            think = spec.session.think_time.draw(rng) if spec.session is not None and turn > 0 else 0.0
+            think = 0.0
+            if spec.session is not None and turn > 0:
+                think = spec.session.think_time.draw(rng) * self.think_scale
             if turn == 0:
                 reuse = spec.shared_prefix is not None and rng.random() < spec.shared_prefix.share
                 text = self._first_text(spec, base, target, reuse, words_rng)
@@ -202,6 +210,12 @@ class Workload:
         prefix = ""
         if spec.shared_prefix is not None:
             prefix = self._prefixes[spec.name] if reuse else self._prefix_text(spec, rng)
+        if prefix:
+            # A request shorter than the prefix keeps the prefix's beginning (still shared).
+            room = self.fit.words_for(target, len(base) + 1, count_words(base))
+            prefix_words = prefix.split()
+            if len(prefix_words) >= room:
+                prefix = " ".join(prefix_words[: max(0, room - 1)])
         other_words = count_words(base) + len(prefix.split())
         words = self.fit.words_for(target, len(base) + 1, other_words)
         text = synthesize(words, rng)

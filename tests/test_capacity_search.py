@@ -47,7 +47,7 @@ PROMPT_TOKENS = 16
 OUTPUT_TOKENS = 12
 TPOT_LIMIT_MS = 24.0
 MAX_LOAD = 128
-STEP = StepPolicy(min_seconds=0.5, max_seconds=1.5, min_requests=50, min_warmup_s=0.3)
+STEP = StepPolicy(min_seconds=0.5, max_seconds=2.0, min_requests=50, min_warmup_s=0.3)
 GRID_STEPS = 12
 
 

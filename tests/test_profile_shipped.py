@@ -11,7 +11,8 @@ from pathlib import Path
 
 import pytest
 
-from loadrun.profile import load_profile
+from loadrun.distributions import Distribution
+from loadrun.profile import Profile, load_profile
 from loadrun.runner import MeasureSettings, embedded_mock, measure
 from loadrun.target import Target
 
@@ -56,12 +57,25 @@ def trace_for(path: Path, profile_path: Path) -> Path:
     return path
 
 
+def brisk(profile: Profile) -> Profile:
+    """The same profile with short answers and short session think times (a short test)."""
+    specs = [
+        replace(spec, session=replace(spec.session, think_time=Distribution.fixed(0.02)))
+        if spec.session is not None
+        else spec
+        for spec in profile.with_lengths(None, 4).mix()
+    ]
+    if profile.classes:
+        return replace(profile, classes=tuple(specs))
+    return replace(profile, request=specs[0])
+
+
 @pytest.mark.parametrize("profile_path", PROFILES, ids=lambda path: path.stem)
 @pytest.mark.parametrize("mode", ["closed", "open", "replay"])
 def test_shipped_profile_runs(mock_target: Target, profile_path: Path, mode: str, tmp_path: Path) -> None:
     profile = load_profile(profile_path)
     settings = MeasureSettings(
-        profile=profile.with_lengths(None, 4),  # short answers keep the run short
+        profile=brisk(profile),
         target=mock_target,
         warmup_s=0.0,
         out_dir=tmp_path,
