@@ -14,7 +14,7 @@ from loadrun.errors import LoadrunError, UsageError
 from loadrun.interrupt import EXIT_INTERRUPTED
 from loadrun.profile import ARRIVALS, Profile, load_profile
 from loadrun.report.terminal import console, render_calibration, render_summary, say
-from loadrun.runner import DEFAULT_MOCK_ENGINE, MeasureSettings, describe_plan, measure
+from loadrun.runner import DEFAULT_MOCK_ENGINE, MeasureSettings, describe_plan, measure, run_notes
 from loadrun.slo import Slo
 from loadrun.target import Target
 from loadrun.transports import TRANSPORT_NAMES
@@ -207,6 +207,8 @@ def measure_command(
         sys.stdout.write(jsonfast.dumps(result.summary).decode() + "\n")
     else:
         render_summary(result.summary)
+    for note in run_notes(result.summary):
+        say(note)
     interrupt = result.summary.get("interrupt")
     if interrupt:
         say(f"Interrupted by {interrupt['signal']}: the summary covers the requests that finished.")

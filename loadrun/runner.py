@@ -319,8 +319,8 @@ async def _run_level(
     try:
         calibration = await _calibration(settings, profile, client)
         config["input_calibration"] = calibration.describe()
-        replayed = isinstance(plan, OpenLoopPlan) and isinstance(plan.arrivals, TraceArrivals)
-        speed = plan.arrivals.speed if isinstance(plan, OpenLoopPlan) and replayed else 1.0
+        trace = plan.arrivals if isinstance(plan, OpenLoopPlan) else None
+        speed = trace.speed if isinstance(trace, TraceArrivals) else 1.0
         workload = Workload(profile, calibration.fit, settings.context_window, think_scale=1 / speed)
         _refuse_impossible(workload, settings.context_window)
         if folder is not None:
@@ -572,6 +572,40 @@ def _arrivals_summary(plan: OpenLoopPlan, level: LevelResult) -> dict[str, Any]:
         "behind": behind,
         "note": note,
     }
+
+
+def run_notes(summary: dict[str, Any]) -> list[str]:
+    """Short lines on what the latency table does not show: arrivals, refusals, answers, lengths."""
+    notes: list[str] = []
+    arrivals = summary.get("arrivals")
+    if arrivals:
+        notes.append(
+            f"Arrivals ({arrivals['arrival']}): {arrivals['due']} due, {arrivals['sent']} sent, "
+            f"{arrivals['not_sent']} not sent (in-flight cap {arrivals['in_flight_cap']}); send lag p99 "
+            f"{arrivals['send_lag_p99_ms'] if arrivals['send_lag_p99_ms'] is not None else '-'} ms."
+        )
+        if arrivals.get("note"):
+            notes.append(f"Warning: {arrivals['note']}")
+    refused = summary.get("requests", {}).get("by_outcome", {}).get(Outcome.OVER_CONTEXT.value)
+    if refused:
+        notes.append(f"Warning: {refused} requests were not sent: they would exceed the context window.")
+    for name, entry in summary.get("classes", {}).items():
+        compliance = entry["compliance"]
+        if compliance["checked"]:
+            notes.append(
+                f"Answers of {name}: {compliance['compliant']} of {compliance['checked']} passed the check "
+                f"({100 * compliance['share']:.0f} %), {entry['output_tokens_mean']:.1f} output tokens each."
+            )
+    lengths = summary.get("input_lengths") or {}
+    if lengths.get("samples"):
+        notes.append(
+            f"Input length: {lengths['requested_mean']:.0f} tokens asked, {lengths['achieved_mean']:.0f} "
+            f"reported by the target on average ({100 * lengths['mean_relative_error']:+.1f} %)."
+        )
+    calibration = summary.get("input_calibration") or {}
+    if calibration.get("note"):
+        notes.append(f"Input calibration: {calibration['note']}.")
+    return notes
 
 
 def describe_plan(settings: MeasureSettings, target: Target, prices: TokenPrices | None = None) -> str:

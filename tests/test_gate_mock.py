@@ -23,7 +23,7 @@ from pathlib import Path
 
 import pytest
 
-from loadrun.gate import GateSettings, Verdict, gate_measure
+from loadrun.gate import GateReport, GateSettings, Verdict, gate_measure
 from loadrun.history import History, RunFilter
 from loadrun.profile import LoadSpec, Profile, RequestSpec
 from loadrun.runner import MeasureSettings, embedded_mock
@@ -66,10 +66,36 @@ def gating(history: Path, **changes: object) -> GateSettings:
     return replace(GateSettings(history_path=history, target_name=TARGET_NAME, min_samples=50), **changes)  # type: ignore[arg-type]
 
 
+class Nights:
+    """Gated runs as a nightly job makes them, re-running a night the gate could not judge
+    because the load generator itself stalled ("generator-limited": a verdict about this
+    machine, not the target; on a run this short one 5 ms scheduling stall decides the
+    loop-lag p99). Each night is tried at most three times and every re-run is counted."""
+
+    def __init__(self, settings: GateSettings) -> None:
+        self.settings = settings
+        self.reruns = 0
+
+    def run(self, target: Target, requests: int = 64) -> GateReport:
+        for _ in range(3):
+            report = gate_measure(measuring(target, requests), self.settings)
+            if not generator_limited_only(report):
+                return report
+            self.reruns += 1
+        return report
+
+
+def generator_limited_only(report: GateReport) -> bool:
+    return report.verdict is Verdict.INVALID and all(
+        reason.startswith("generator-limited") for reason in report.reasons
+    )
+
+
 def test_an_engine_25_percent_slower_per_step_is_a_regression(normal: Target, tmp_path: Path) -> None:
     settings = gating(tmp_path / "history.sqlite3")
-    assert gate_measure(measuring(normal), settings).verdict is Verdict.NO_BASELINE
-    assert gate_measure(measuring(normal), settings).verdict is Verdict.PASS
+    nights = Nights(settings)
+    assert nights.run(normal).verdict is Verdict.NO_BASELINE
+    assert nights.run(normal).verdict is Verdict.PASS
     base = load_config("small-fast")
     slow_engine = engine_toml(
         tmp_path,
@@ -78,14 +104,15 @@ def test_an_engine_25_percent_slower_per_step_is_a_regression(normal: Target, tm
         decode_per_seq_ms=base.decode_per_seq_ms * 1.25,
     )
     with embedded_mock(str(slow_engine)) as (slow, _info):
-        report = gate_measure(measuring(slow), settings)
+        report = nights.run(slow)
     assert report.verdict is Verdict.REGRESSION and report.exit_code == 1, report.reasons
     for result in report.rules:
         assert result.regressed and result.change is not None
         # Every latency here is a whole number of engine steps, so all scale by 1.25.
         assert result.change.ratio == pytest.approx(1.25, abs=0.08), result.rule.label
     # The slow run is stored as a regression and is no baseline for the next one.
-    assert gate_measure(measuring(normal), settings).verdict is Verdict.PASS
+    assert nights.run(normal).verdict is Verdict.PASS
+    assert nights.reruns <= 2
 
 
 def test_a_context_window_too_small_makes_the_run_invalid(tmp_path: Path) -> None:
@@ -104,15 +131,17 @@ def test_too_few_requests_make_the_run_invalid(normal: Target, tmp_path: Path) -
 
 def test_no_change_passes_in_at_least_95_percent_of_40_runs(normal: Target, tmp_path: Path) -> None:
     """The false-alarm rate of the default rules (ttft, tpot and e2e p95, 15 %) on an unchanged
-    mock: the first run becomes the baseline, then 40 runs are each gated against the median
-    of the last 5 that passed, as a nightly job would do over 40 nights."""
+    mock: the first run becomes the baseline, then 40 nights are each gated against the
+    median of the last 5 that passed, as a nightly job would do. Nights the generator could
+    not judge are re-run (see Nights) and reported; at most 10 re-runs in all."""
     settings = gating(tmp_path / "history.sqlite3")
+    nights = Nights(settings)
     started = time.monotonic()
     verdicts: collections.Counter[str] = collections.Counter()
     worst_low: dict[str, float] = {}
-    assert gate_measure(measuring(normal), settings).verdict is Verdict.NO_BASELINE
+    assert nights.run(normal).verdict is Verdict.NO_BASELINE
     for _ in range(REPETITIONS):
-        report = gate_measure(measuring(normal), settings)
+        report = nights.run(normal)
         verdicts[report.verdict.value] += 1
         for result in report.rules:
             if result.change is not None:
@@ -120,12 +149,13 @@ def test_no_change_passes_in_at_least_95_percent_of_40_runs(normal: Target, tmp_
                     worst_low.get(result.rule.label, 0.0), result.change.ratio_low
                 )
     seconds = time.monotonic() - started
-    print(f"\n{REPETITIONS} unchanged runs in {seconds:.1f} s: {dict(verdicts)}")
+    print(f"\n{REPETITIONS} unchanged nights in {seconds:.1f} s: {dict(verdicts)}, {nights.reruns} re-run")
     print(f"highest lower ends of the ratio intervals: {worst_low}")
     assert verdicts["regression"] / REPETITIONS <= 0.05
     assert verdicts["pass"] / REPETITIONS >= 0.95, dict(verdicts)
+    assert nights.reruns <= 10
     with History(settings.history_path) as history:
-        assert len(history.find(RunFilter(limit=100))) == REPETITIONS + 1
+        assert len(history.find(RunFilter(limit=200))) == REPETITIONS + 1 + nights.reruns
 
 
 def readme_nightly_command() -> list[str]:

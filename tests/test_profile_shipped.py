@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from loadrun.cli import main
 from loadrun.distributions import Distribution
 from loadrun.profile import Profile, load_profile
 from loadrun.runner import MeasureSettings, embedded_mock, measure
@@ -128,6 +129,8 @@ def loadrun_cli(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:
                 "profiles/traces/harbour-desk-morning.jsonl",
                 "--replay-speed",
                 "8",
+                "--output-tokens",
+                "8",
             ),
             "open_loop",
         ),
@@ -156,9 +159,18 @@ def test_measure_command_takes_the_arrival_and_load_level(args: tuple[str, ...],
         (("--trace", "no-such-trace.jsonl", "--arrival", "replay"), "no such trace"),
     ],
 )
-def test_bad_arrival_options_are_one_line_errors(tmp_path: Path, args: tuple[str, ...], words: str) -> None:
-    result = loadrun_cli(*args, cwd=tmp_path)
-    assert result.returncode == 2, result.stderr
-    assert "Traceback" not in result.stderr
-    last = [line for line in result.stderr.splitlines() if line.strip()][-1]
-    assert last.startswith("UsageError:") and words in last, result.stderr
+def test_bad_arrival_options_are_one_line_errors(
+    tmp_path: Path,
+    args: tuple[str, ...],
+    words: str,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    monkeypatch.chdir(tmp_path)
+    with pytest.raises(SystemExit) as exit_info:
+        main(["measure", *args, "--no-save"])
+    assert exit_info.value.code == 2
+    stderr = capsys.readouterr().err
+    assert "Traceback" not in stderr
+    last = [line for line in stderr.splitlines() if line.strip()][-1]
+    assert last.startswith("UsageError:") and words in last, stderr
