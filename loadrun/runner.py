@@ -612,8 +612,13 @@ def describe_plan(settings: MeasureSettings, target: Target, prices: TokenPrices
     """What one run will send, in words, for the confirmation before loading a remote target."""
     plan = settings.plan()
     request = settings.profile.request
+    probe = (
+        "\nFirst, up to 4 requests of one output token each learn how the target counts input tokens."
+        if settings.wants_calibration()
+        else ""
+    )
     if isinstance(plan, ClosedLoopPlan):
-        return plan_text(
+        text = plan_text(
             target,
             requests=plan.requests,
             duration_s=plan.duration_s,
@@ -622,6 +627,7 @@ def describe_plan(settings: MeasureSettings, target: Target, prices: TokenPrices
             output_tokens=request.output_tokens,
             prices=prices,
         )
+        return text + probe
     arrivals = plan.arrivals
     expected: float | None = plan.requests
     if isinstance(arrivals, TraceArrivals):
@@ -646,7 +652,7 @@ def describe_plan(settings: MeasureSettings, target: Target, prices: TokenPrices
     else:
         lines.append("Estimated cost: unknown (give --price-input and --price-output per million tokens).")
     lines.append(CAUTION)
-    return "\n".join(lines)
+    return "\n".join(lines) + probe
 
 
 def event_loop_options() -> dict[str, Any]:

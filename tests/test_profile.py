@@ -314,3 +314,18 @@ def test_describe_records_the_classes(tmp_path: Path) -> None:
     assert [entry["name"] for entry in described["classes"]] == ["a", "b"]
     assert described["classes"][0]["input_length"]["distribution"] == "uniform"
     assert described["load"]["arrival"] == "poisson" and described["load"]["rate_per_s"] == 4.0
+
+
+def test_the_readme_example_is_a_valid_profile() -> None:
+    """The README's complete example loads (its files resolve against profiles/)."""
+    import textwrap
+    import tomllib
+
+    root = Path(__file__).resolve().parent.parent
+    readme = (root / "README.md").read_text()
+    start = readme.index("A complete profile, with every key")
+    block = readme[readme.index("\n\n", start) + 2 : readme.index("\nLengths are a number", start)]
+    profile = profile_from_dict(tomllib.loads(textwrap.dedent(block)), "README", base_dir=root / "profiles")
+    assert [spec.name for spec in profile.mix()] == ["question", "triage", "berth-json"]
+    assert profile.load.arrival == "poisson" and profile.load.trace is not None
+    assert next(iter(profile.requests())).messages
