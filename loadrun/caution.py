@@ -24,22 +24,26 @@ providers and to test a modest deployment, too little for a typo to flood a serv
 EXCEED_CAPS_OPTION = "--exceed-remote-caps"
 
 
+def cap_excess(*, concurrency: float | None = None, rate_per_s: float | None = None) -> str | None:
+    """What goes above the remote caps, in words; None when nothing does."""
+    if concurrency is not None and concurrency > REMOTE_MAX_CONCURRENCY:
+        return f"concurrency {concurrency:g} is above the cap of {REMOTE_MAX_CONCURRENCY}"
+    if rate_per_s is not None and rate_per_s > REMOTE_MAX_RATE_PER_S:
+        return f"arrival rate {rate_per_s:g}/s is above the cap of {REMOTE_MAX_RATE_PER_S:g}/s"
+    return None
+
+
 def check_remote_caps(
     target: Target, *, concurrency: int | None = None, rate_per_s: float | None = None, override: bool = False
 ) -> None:
     """Refuse a load above the caps on a target that is not on this machine, unless overridden."""
     if override or target.is_loopback:
         return
-    if concurrency is not None and concurrency > REMOTE_MAX_CONCURRENCY:
+    problem = cap_excess(concurrency=concurrency, rate_per_s=rate_per_s)
+    if problem is not None:
         raise UsageError(
-            f"concurrency {concurrency} is above the cap of {REMOTE_MAX_CONCURRENCY} for a target that is "
-            f"not on this machine; pass {EXCEED_CAPS_OPTION} if you may load {target.endpoint.host} that hard"
-        )
-    if rate_per_s is not None and rate_per_s > REMOTE_MAX_RATE_PER_S:
-        raise UsageError(
-            f"arrival rate {rate_per_s:g}/s is above the cap of {REMOTE_MAX_RATE_PER_S:g}/s for a target "
-            f"that is not on this machine; pass {EXCEED_CAPS_OPTION} if you may load "
-            f"{target.endpoint.host} that hard"
+            f"{problem} for a target that is not on this machine; "
+            f"pass {EXCEED_CAPS_OPTION} if you may load {target.endpoint.host} that hard"
         )
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+import signal
 import sys
 from pathlib import Path
 from typing import Annotated, Any, NoReturn
@@ -10,6 +11,7 @@ from typing import Annotated, Any, NoReturn
 import typer
 
 from loadrun import jsonfast
+from loadrun.caution import cap_excess
 from loadrun.errors import LoadrunError, UsageError
 from loadrun.interrupt import EXIT_INTERRUPTED
 from loadrun.profile import ARRIVALS, Profile, load_profile
@@ -329,6 +331,9 @@ def gate_command(
     yes: Annotated[
         bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")
     ] = False,
+    exceed_remote_caps: Annotated[
+        bool, typer.Option("--exceed-remote-caps", help="Lift the load caps for a remote target.")
+    ] = False,
 ) -> None:
     """Run a profile (or take a finished run) and compare it with its baseline.
 
@@ -380,7 +385,9 @@ def gate_command(
             connect_timeout_s=connect_timeout,
             time_limit_s=time_limit,
             confirmed=yes,
+            exceed_remote_caps=exceed_remote_caps,
         )
+        measure_settings.check()
         if target is not None and not target.is_loopback and not yes:
             _confirm(target, measure_settings)
             measure_settings = _replace_confirmed(measure_settings)
@@ -593,6 +600,10 @@ def compare_command(
         confirmed=yes,
         description=targets.description,
     )
+    for spec in settings.targets:
+        problem = None if spec.is_loopback else cap_excess(concurrency=max(settings.concurrencies()))
+        if problem is not None:
+            raise UsageError(f"{problem} for target {spec.name}, which is not on this machine")
     if not yes and not all(spec.is_loopback for spec in settings.targets):
         say(plan_text(settings))
         if not sys.stdin.isatty():
@@ -799,6 +810,11 @@ def capacity_command(
         connect_timeout_s=connect_timeout,
         confirmed=yes,
     )
+    if target is not None and not target.is_loopback:
+        load = {"concurrency": max_load} if axis == "concurrency" else {"rate_per_s": max_load}
+        problem = cap_excess(**load)
+        if problem is not None:
+            raise UsageError(f"--max-load: {problem} for a target that is not on this machine")
     if target is not None and not target.is_loopback and not yes:
         _ask_to_send(describe_plan(settings, target))
         settings = replace(settings, confirmed=True)
@@ -915,6 +931,10 @@ def main(argv: list[str] | None = None) -> Any:
         _fail("UsageError", " ".join(exc.format_message().split()), 2)
     except typer.Exit as exc:
         raise SystemExit(exc.exit_code) from None
+    finally:
+        # A Ctrl-C that lands while the interpreter shuts down (after the run's own handlers
+        # are gone) ends the process quietly instead of printing a traceback from threading.
+        signal.signal(signal.SIGINT, signal.SIG_DFL)
 
 
 if __name__ == "__main__":  # pragma: no cover

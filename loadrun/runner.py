@@ -164,7 +164,9 @@ class MeasureSettings:
             raise UsageError("give a concurrency (closed loop) or an arrival rate (open loop), not both")
         kind = self.arrival
         if kind is None:
-            if self.rate_per_s is not None:
+            if self.trace_path is not None and self.concurrency is None and self.rate_per_s is None:
+                kind = "replay"  # a trace given on its own is meant to be replayed
+            elif self.rate_per_s is not None:
                 kind = self.profile.load.arrival if self.profile.load.arrival in OPEN_ARRIVALS else "poisson"
             elif self.concurrency is not None:
                 kind = "closed"
