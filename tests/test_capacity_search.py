@@ -231,7 +231,8 @@ def test_the_command_prints_json_with_the_fit_and_writes_plots(tmp_path: Path) -
 def test_a_remote_target_needs_confirmation(tmp_path: Path) -> None:
     """No terminal to ask and no --yes: refused before anything is sent (TEST-NET address)."""
     completed = subprocess.run(
-        [sys.executable, "-m", "loadrun", "capacity", "--base-url", "http://192.0.2.10/v1", "--model", "m"],
+        [sys.executable, "-m", "loadrun", "capacity", "--base-url", "http://192.0.2.10/v1", "--model", "m",
+         "--max-load", "16"],  # within the remote-target cap, so the confirmation step is reached
         cwd=tmp_path, capture_output=True, text=True, timeout=30, stdin=subprocess.DEVNULL,
     )  # fmt: skip
     assert completed.returncode == 2
