@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+import re
 import signal
 import sys
 from pathlib import Path
@@ -242,11 +243,31 @@ def mock_command(
     host: Annotated[str, typer.Option(help="Address to listen on (loopback by default).")] = "127.0.0.1",
     port: Annotated[int, typer.Option(min=0, max=65535, help="Port; 0 picks a free one.")] = 8000,
     engine: Annotated[str, typer.Option(help="Engine preset name or TOML file.")] = DEFAULT_MOCK_ENGINE,
+    faults: Annotated[
+        Path | None, typer.Option(help="Fault plan TOML: [faults], [faults.rates] and [quirks] tables.")
+    ] = None,
+    fault: Annotated[
+        list[str] | None, typer.Option(help="A fault's rate KIND=RATE or a setting, stall_s=2 (repeatable).")
+    ] = None,
+    quirk: Annotated[
+        list[str] | None, typer.Option(help="A protocol quirk NAME[=VALUE] (repeatable).")
+    ] = None,
 ) -> None:
-    """Run the bundled mock inference server in the foreground until Ctrl-C."""
+    """Run the bundled mock inference server in the foreground until Ctrl-C (faults and quirks on request)."""
     from mock_server.__main__ import main as mock_main
+    from mock_server.faults import FaultPlan, FaultsError, load_plan, plan_with_options
 
-    raise typer.Exit(mock_main(["--host", host, "--port", str(port), "--engine", engine]))
+    try:  # refused here, in loadrun's words, before the server starts
+        plan_with_options(load_plan(faults) if faults else FaultPlan(), fault or [], quirk or [])
+    except FaultsError as exc:
+        raise UsageError(str(exc)) from exc
+    args = ["--host", host, "--port", str(port), "--engine", engine]
+    args += ["--faults", str(faults)] if faults else []
+    for text in fault or []:
+        args += ["--fault", text]
+    for text in quirk or []:
+        args += ["--quirk", text]
+    raise typer.Exit(mock_main(args))
 
 
 # --- regression gate and history -------------------------------------------------------------
@@ -850,9 +871,14 @@ def _target(
     pairs = []
     for text in headers:
         name, sep, value = text.partition(":")
-        if not sep or not name.strip():
-            raise UsageError(f"header {text!r}: write 'Name: value'")
-        pairs.append((name.strip(), value.strip()))
+        name, value = name.strip(), value.strip()
+        if not sep or not _HEADER_NAME.fullmatch(name):
+            raise UsageError(f"header {name!r}: write 'Name: value' with a valid header name")
+        if name.lower() == "authorization":  # never echo its value: it is a credential
+            raise UsageError("header Authorization: keys go in --api-key-env (a variable's name), not here")
+        if any(char in value for char in "\r\n\0"):
+            raise UsageError(f"header {name}: the value must be one line")
+        pairs.append((name, value))
     target = Target(
         base_url=base_url,
         model=model,
@@ -910,6 +936,10 @@ def _one_line(text: str) -> str:
     if text.isprintable():
         return text
     return "".join(char if char.isprintable() else char.encode("unicode_escape").decode() for char in text)
+
+
+_HEADER_NAME = re.compile(r"[A-Za-z0-9!#$%&'*+.^_`|~-]+")
+"""A header name is an RFC 9110 token."""
 
 
 @functools.cache

@@ -504,7 +504,7 @@ def _width(plan: LoadPlan) -> int:
 async def _calibration(settings: MeasureSettings, profile: Profile, client: ChatClient) -> Calibration:
     """The TokenFit for this target: learned by a short probe, or one token per word."""
     if not settings.wants_calibration() or all(spec.prompts is not None for spec in profile.mix()):
-        return Calibration(ONE_TOKEN_PER_WORD, note="not calibrated: one word is taken as one token")
+        return Calibration(ONE_TOKEN_PER_WORD)  # not asked for: the fit's source says so
     mix = profile.mix()
     typical = sum(spec.weight * spec.input_tokens for spec in mix) / sum(spec.weight for spec in mix)
     return await calibrate_tokens(client.execute, typical, profile.seed, settings.context_window)

@@ -254,8 +254,14 @@ def plan_with_options(plan: FaultPlan, fault_options: list[str], quirk_options: 
         value = _number(raw, f"--fault {key}")
         if key in FAULT_KINDS:
             rates[key] = value
-        else:
+        elif key in faults_table and key != "rates":
             faults_table[key] = value
+        else:
+            settings = ", ".join(name for name in faults_table if name != "rates")
+            raise FaultsError(
+                f"--fault {key}: no such fault or setting; faults: {', '.join(FAULT_KINDS)}; "
+                f"settings: {settings}"
+            )
     faults_table["rates"] = rates
     quirks_table: dict[str, Any] = plan.quirks.as_dict()
     for text in quirk_options:

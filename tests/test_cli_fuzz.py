@@ -5,7 +5,8 @@ command line's own option list with hostile values (nan, inf, huge and negative 
 odd unicode, broken URLs and specs), random profile files and random targets files. The
 command line runs in this process through ``loadrun.cli.main``; the functions that would
 start load are replaced by stubs that validate what reached them (``MeasureSettings.check``)
-and stop there, so an accepted input costs nothing. A few inputs run as real processes too.
+and stop there, so an accepted input costs nothing: 1,500 cases in all. A few inputs run
+as real processes too.
 """
 
 from __future__ import annotations
@@ -212,18 +213,17 @@ def fuzz(strategy: st.SearchStrategy[list[str]], examples: int) -> Counter[str]:
         seen[outcome_of(argv)] += 1
 
     check()
-    print(dict(seen))
     return seen
 
 
 def test_random_measure_command_lines(fuzz_dir: Path) -> None:
-    seen = fuzz(command_lines(("measure",)), 800)
-    assert sum(seen.values()) >= 800 and seen["refused"] > 400, seen
+    seen = fuzz(command_lines(("measure",)), 600)
+    assert sum(seen.values()) >= 600 and seen["refused"] > 300, seen
 
 
 def test_random_command_lines_of_every_command(fuzz_dir: Path) -> None:
-    seen = fuzz(command_lines(), 600)
-    assert sum(seen.values()) >= 600 and seen["refused"] > 300, seen
+    seen = fuzz(command_lines(), 400)
+    assert sum(seen.values()) >= 400 and seen["refused"] > 200, seen
 
 
 # --- profiles and targets files ---------------------------------------------------------------
@@ -344,13 +344,13 @@ def targets_runs(draw: st.DrawFn) -> list[str]:
 
 
 def test_random_profiles(fuzz_dir: Path) -> None:
-    seen = fuzz(profile_runs(), 500)
-    assert sum(seen.values()) >= 500 and seen["refused"] > 250, seen
+    seen = fuzz(profile_runs(), 300)
+    assert sum(seen.values()) >= 300 and seen["refused"] > 150, seen
 
 
 def test_random_targets_files(fuzz_dir: Path) -> None:
-    seen = fuzz(targets_runs(), 300)
-    assert sum(seen.values()) >= 300 and seen["refused"] > 150, seen
+    seen = fuzz(targets_runs(), 200)
+    assert sum(seen.values()) >= 200 and seen["refused"] > 100, seen
 
 
 # --- a few as real processes -------------------------------------------------------------------
@@ -358,9 +358,7 @@ def test_random_targets_files(fuzz_dir: Path) -> None:
 REAL_RUNS = [
     ["measure", "--base-url", "http://[::1/v1", "--model", "m"],
     ["measure", "--duration", "nan"],
-    ["measure", "-c", "100000000000000000000"],
     ["measure", "profile.toml"],
-    ["compare", "targets.toml"],
     ["gate", "--rule", "ttft.p200 5%"],
 ]
 

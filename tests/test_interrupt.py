@@ -178,3 +178,18 @@ async def test_the_first_signal_only_sets_the_stop() -> None:
     guard = SignalStop(stop, grace_s=3.0)
     guard._on_signal(signal.SIGTERM)
     assert stop.is_set() and guard.signal_name == "SIGTERM"
+
+
+def test_an_open_loop_run_stops_the_same_way(tmp_path: Path) -> None:
+    process = start_run(tmp_path, "--rate", "20", "-d", "60", "--output-tokens", "20", "--stop-grace", "20")
+    folder = run_folder_once_started(tmp_path, process)
+    time.sleep(1.5)
+    process.send_signal(signal.SIGINT)
+    code, _stdout, stderr, waited = finish(process, 20)
+    assert code == EXIT_INTERRUPTED, stderr
+    assert "Traceback" not in stderr and waited < 5
+    summary = json.loads((folder / "summary.json").read_text())
+    assert summary["interrupt"]["signal"] == "SIGINT" and summary["cancelled_in_flight"] == 0
+    rows = complete_lines(folder / "records.jsonl")
+    assert rows and all(row["outcome"] == "ok" for row in rows)
+    assert_gone(mock_pid(folder))
