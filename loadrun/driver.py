@@ -168,6 +168,12 @@ class _Slots:
     def exhausted(self) -> bool:
         return self.requests is not None and self.state.measured_sent >= self.requests
 
+    @property
+    def closes_at(self) -> int:
+        """No request due at or after this instant will be sent (the window's end, moved
+        forward to the last request's claim once the request count is used)."""
+        return min(self.state.window_end_ns, self.deadline)
+
 
 async def send_turn(conversation: Conversation, turn: int, record: Record, execute: Execute) -> bool:
     """Send one turn of a conversation into ``record``; True if the conversation goes on."""
@@ -258,8 +264,12 @@ async def run_closed_loop(
                 if not goes_on:
                     break
                 turn += 1
-                await _pause(conversation.turns[turn].think_before_s, stop)
-            await _pause(plan.think_time_s, stop)
+                await _pause(until_close(conversation.turns[turn].think_before_s), stop)
+            await _pause(until_close(plan.think_time_s), stop)
+
+    def until_close(think_s: float) -> float:
+        # A think time that would outlast the last request is not waited out.
+        return min(think_s, (slots.closes_at - clock()) / NS_PER_S)
 
     async def enforce_time_limit(clients: anyio.abc.TaskGroup) -> None:
         # The grace starts at the time limit or at an outside stop, whichever comes first.
@@ -344,6 +354,8 @@ async def run_open_loop(
             turn += 1
             # The next turn is due one think time after this answer, whenever that came.
             due = record.end_ns + int(conversation.turns[turn].think_before_s * NS_PER_S)
+            if due >= slots.closes_at:  # the turn would come too late to be sent
+                return
             await _sleep_until(due, clock, stop)
 
     async def dispatch(conversations: anyio.abc.TaskGroup) -> None:

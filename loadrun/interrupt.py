@@ -5,10 +5,13 @@ requests in flight get the grace period to finish (``MeasureSettings.stop_grace_
 are then cancelled; the summary is written marked interrupted, and the command exits 130.
 
 Second signal: exit at once, status 130, after killing the child processes the run
-started (the embedded mock) by PID. Nothing on disk is left half-written: the handler runs
-as an event-loop callback, never inside a write, and record lines are written whole and
-flushed one by one from the loop; summaries go to a temporary file that is then renamed;
-the history database is SQLite, whose journal makes an interrupted transaction vanish.
+started (the embedded mock) by PID. Once interrupted, that holds until the process ends:
+when the run's event loop no longer listens (the summary is being written, the report
+printed), a plain signal handler takes over the "exit at once". Nothing on disk is left
+half-written: the handler runs as an event-loop callback, never inside a write, and record
+lines are written whole and flushed one by one from the loop; summaries go to a temporary
+file that is then renamed; the history database is SQLite, whose journal makes an
+interrupted transaction vanish.
 """
 
 from __future__ import annotations
@@ -51,6 +54,8 @@ class SignalStop:
         loop = asyncio.get_running_loop()
         for signum in self._installed:
             loop.remove_signal_handler(signum)
+            if self.signal_name is not None:  # interrupted: a further signal still means "now"
+                signal.signal(signum, self._on_late_signal)
         self._installed.clear()
 
     def _on_signal(self, signum: signal.Signals) -> None:
@@ -64,9 +69,11 @@ class SignalStop:
             return
         _tell(f"{signal.Signals(signum).name} again: exiting at once.")
         for pid in self.child_pids:
-            with contextlib.suppress(ProcessLookupError, PermissionError):
-                os.kill(pid, signal.SIGKILL)
+            _kill_if_our_child(pid)
         os._exit(EXIT_INTERRUPTED)
+
+    def _on_late_signal(self, signum: int, _frame: object) -> None:
+        self._on_signal(signal.Signals(signum))
 
 
 @contextlib.contextmanager
@@ -81,6 +88,18 @@ def signals_stop(
         yield guard
     finally:
         guard.remove()
+
+
+def _kill_if_our_child(pid: int) -> None:
+    """SIGKILL ``pid`` only while it is still our unreaped child: a PID freed by a reaped
+    child may already belong to some other process."""
+    try:
+        reaped, _status = os.waitpid(pid, os.WNOHANG)
+    except ChildProcessError:  # not (or no longer) ours
+        return
+    if reaped == 0:  # alive
+        with contextlib.suppress(ProcessLookupError, PermissionError):
+            os.kill(pid, signal.SIGKILL)
 
 
 def _tell(message: str) -> None:

@@ -275,3 +275,23 @@ async def test_closed_loop_runs_sessions_and_think_time() -> None:
     for record in records:
         by_conversation.setdefault(record.conversation, []).append(record.turn)
     assert all(turns in ([0, 1], [0]) for turns in by_conversation.values())
+
+
+@pytest.mark.anyio
+async def test_a_long_think_time_is_not_waited_out_after_the_last_request() -> None:
+    """Once the request count is used (or the window is over), no client sits out a think
+    time that no request can follow: the level ends when the last answer is in."""
+    _, execute = stand_in(0.01)
+    spec = RequestSpec(
+        input_tokens=5, output_tokens=3, session=Session(turns=2, think_time=Distribution.fixed(30.0))
+    )
+    profile = Profile(request=spec, load=LoadSpec())
+    started = perf_counter_ns()
+    closed = ClosedLoopPlan(concurrency=2, requests=2, warmup_s=0.0, think_time_s=30.0)
+    records: list[Record] = []
+    await run_closed_loop(closed, execute, conversations(profile), records.append)
+    assert len(records) == 2  # the count is used by the first turns; their second turns never come
+    opened = OpenLoopPlan(ConstantArrivals(20.0), duration_s=0.3, warmup_s=0.0)
+    arrivals = zip(ConstantArrivals(20.0).offsets_s(random.Random(0)), conversations(profile), strict=False)
+    await run_open_loop(opened, execute, arrivals, records.append)
+    assert (perf_counter_ns() - started) / 1e9 < 2.0
