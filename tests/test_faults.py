@@ -287,6 +287,7 @@ def test_a_run_counts_every_fault_exactly_as_injected(tmp_path: Path, transport:
     for kind, count in truth["injected"].items():
         expected[EXPECTED_OUTCOME[kind]] += count
     expected["ok"] = total - truth["injected_total"]
+    print(f"\n{transport}: injected {truth['injected']} -> by outcome {summary['requests']['by_outcome']}")
     assert summary["requests"]["by_outcome"] == dict(expected)
     assert summary["requests"]["ok"] == expected["ok"]
     assert summary["requests"]["failed"] == truth["injected_total"]

@@ -65,14 +65,14 @@ def test_soak_memory_stays_flat(tmp_path: Path) -> None:
                 if run.poll() is None:
                     run.kill()
         mock_stats = httpx.get(mock.url + "/mock/stats", timeout=10).json()
-    assert run.returncode == 0, stderr
-    summary = json.loads(stdout)
-    settled = [size for at, size in samples if at >= SECONDS / 10] or [size for _, size in samples]
-    growth = settled[-1] - settled[0]
     print()
     print(f"{'t (s)':>8} {'RSS (MB)':>9}")
     for at, size in samples:
         print(f"{at:>8.0f} {size:>9.1f}")
+    assert run.returncode == 0, stderr
+    summary = json.loads(stdout)  # whole: the run's stdout is read only after it ended
+    settled = [size for at, size in samples if at >= SECONDS / 10] or [size for _, size in samples]
+    growth = settled[-1] - settled[0]
     requests = summary["requests"]
     print(
         f"soak {SECONDS:g} s: {requests['measured']} requests ({requests['failed']} failed), "
