@@ -51,26 +51,31 @@ def test_soak_memory_stays_flat(tmp_path: Path) -> None:
             "--no-history", "--json", "--time-limit", str(SECONDS + 600),
         ]  # fmt: skip
         started = time.monotonic()
-        with subprocess.Popen(
-            command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL, text=True
-        ) as run:
+        # Output goes to files: a pipe nobody drains until the end would block the run's
+        # final write of a summary larger than the pipe's 64 KiB.
+        out_file, err_file = tmp_path / "stdout.json", tmp_path / "stderr.txt"
+        with (
+            out_file.open("w") as out,
+            err_file.open("w") as err,
+            subprocess.Popen(command, stdout=out, stderr=err, stdin=subprocess.DEVNULL) as run,
+        ):
             try:
                 while run.poll() is None:
                     size = resident_mb(run.pid)
                     if size is not None:
                         samples.append((time.monotonic() - started, size))
                     time.sleep(SAMPLE_S)
-                stdout, stderr = run.communicate(timeout=60)
             finally:
                 if run.poll() is None:
                     run.kill()
+        stdout, stderr = out_file.read_text(), err_file.read_text()
         mock_stats = httpx.get(mock.url + "/mock/stats", timeout=10).json()
     print()
     print(f"{'t (s)':>8} {'RSS (MB)':>9}")
     for at, size in samples:
         print(f"{at:>8.0f} {size:>9.1f}")
     assert run.returncode == 0, stderr
-    summary = json.loads(stdout)  # whole: the run's stdout is read only after it ended
+    summary = json.loads(stdout)
     settled = [size for at, size in samples if at >= SECONDS / 10] or [size for _, size in samples]
     growth = settled[-1] - settled[0]
     requests = summary["requests"]
