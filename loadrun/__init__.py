@@ -43,9 +43,26 @@ from loadrun.errors import (
 )
 from loadrun.export import export_folder
 from loadrun.fits import UslFit, fit_usl
+from loadrun.frontier import (
+    Frontier,
+    FrontierPoint,
+    MeasuredTarget,
+    blended_cost,
+    mixture_percentiles_us,
+    routing_frontier,
+)
 from loadrun.gate import GateReport, GateSettings, Rule, Verdict, gate_folder, gate_measure, gate_summary
+from loadrun.generator_health import CpuMeter, assess_generator
 from loadrun.history import History, HistoryRun, MetricPercentile, RunFilter
 from loadrun.metrics import HistogramSet, LatencyHistogram
+from loadrun.pipeline import (
+    PipelineProfile,
+    PipelineResult,
+    PipelineSettings,
+    load_pipeline_profile,
+    run_pipeline,
+    run_pipeline_async,
+)
 from loadrun.profile import LoadSpec, Profile, PromptSet, RequestSpec, Session, SharedPrefix, load_profile
 from loadrun.prompts import Calibration, TokenFit, calibrate_tokens, synthesize
 from loadrun.protocol import ChatRequest
@@ -53,10 +70,22 @@ from loadrun.record import Outcome, Record, TokenSource
 from loadrun.recorder import Recorder
 from loadrun.report.html import write_report
 from loadrun.retry import RetryPolicy, parse_retry_after
+from loadrun.routing import (
+    RoutedProfile,
+    RoutedResult,
+    RouteSettings,
+    load_routed_profile,
+    run_routed,
+    run_routed_async,
+)
 from loadrun.runner import MeasureSettings, RunResult, measure, measure_async
+from loadrun.scale import measure_scaled
+from loadrun.shard_merge import merge_summaries
+from loadrun.shards import ShardSpec, split_settings
 from loadrun.slo import Slo
 from loadrun.sse import EventStreamParser, ServerSentEvent
 from loadrun.target import Target
+from loadrun.target_pool import LevelOverrides
 from loadrun.targets import Prices, TargetsFile, TargetSpec, load_targets
 from loadrun.timeouts import Timeouts
 from loadrun.workload import Conversation, Workload
@@ -78,9 +107,12 @@ __all__ = [
     "ComparisonResult",
     "ConstantArrivals",
     "Conversation",
+    "CpuMeter",
     "Distribution",
     "ErrorShareSlo",
     "EventStreamParser",
+    "Frontier",
+    "FrontierPoint",
     "GateOutputs",
     "GateReport",
     "GateSettings",
@@ -89,14 +121,19 @@ __all__ = [
     "HistoryRun",
     "JsonSchemaCheck",
     "LatencyHistogram",
+    "LevelOverrides",
     "LoadSpec",
     "LoadrunError",
     "MeasureSettings",
+    "MeasuredTarget",
     "MeasurementError",
     "MetricPercentile",
     "OpenLoopPlan",
     "Outcome",
     "PercentileSlo",
+    "PipelineProfile",
+    "PipelineResult",
+    "PipelineSettings",
     "PoissonArrivals",
     "Prices",
     "Profile",
@@ -110,12 +147,16 @@ __all__ = [
     "RequestFailed",
     "RequestSpec",
     "RetryPolicy",
+    "RouteSettings",
+    "RoutedProfile",
+    "RoutedResult",
     "Rule",
     "RunFilter",
     "RunResult",
     "SearchBudget",
     "ServerSentEvent",
     "Session",
+    "ShardSpec",
     "SharedPrefix",
     "Slo",
     "StepPolicy",
@@ -136,6 +177,8 @@ __all__ = [
     "Verdict",
     "Workload",
     "__version__",
+    "assess_generator",
+    "blended_cost",
     "calibrate_tokens",
     "collecting_answer",
     "compare",
@@ -149,7 +192,9 @@ __all__ = [
     "gate_folder",
     "gate_measure",
     "gate_summary",
+    "load_pipeline_profile",
     "load_profile",
+    "load_routed_profile",
     "load_targets",
     "load_trace",
     "make_arrivals",
@@ -157,11 +202,20 @@ __all__ = [
     "mean_wait_s",
     "measure",
     "measure_async",
+    "measure_scaled",
+    "merge_summaries",
+    "mixture_percentiles_us",
     "parse_retry_after",
     "post_webhook",
+    "routing_frontier",
     "run_closed_loop",
     "run_open_loop",
+    "run_pipeline",
+    "run_pipeline_async",
+    "run_routed",
+    "run_routed_async",
     "service_level",
+    "split_settings",
     "synthesize",
     "wait_longer_than",
     "write_report",

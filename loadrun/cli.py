@@ -18,9 +18,11 @@ from loadrun.interrupt import EXIT_INTERRUPTED
 from loadrun.profile import ARRIVALS, Profile, load_profile
 from loadrun.report.terminal import console, render_calibration, render_summary, say
 from loadrun.runner import DEFAULT_MOCK_ENGINE, MeasureSettings, describe_plan, measure, run_notes
+from loadrun.scale import measure_scaled
 from loadrun.slo import Slo
 from loadrun.target import Target
 from loadrun.transports import TRANSPORT_NAMES
+from loadrun.whole_output import write_whole
 
 app = typer.Typer(
     add_completion=False,
@@ -154,6 +156,16 @@ def measure_command(
         str | None,
         typer.Option(help="HOST to which the API key may go over plain http (named, never implied)."),
     ] = None,
+    workers: Annotated[
+        int | None,
+        typer.Option(
+            min=1, max=256, help="Split the load level across this many worker processes (--cluster: all)."
+        ),
+    ] = None,
+    cluster: Annotated[
+        str | None,
+        typer.Option(help="Dask scheduler ADDRESS (tcp://host:8786): run the workers' shards there."),
+    ] = None,
 ) -> None:
     """Measure one profile at one load level (a concurrency or an arrival rate) and print the summary."""
     profile = load_profile(profile_path) if profile_path else Profile()
@@ -205,17 +217,15 @@ def measure_command(
         settings = _replace_confirmed(settings)
     if target is None:
         say(f"No --base-url given: starting the bundled mock server (engine {mock_engine}) on loopback.")
-    result = measure(settings)
+    scaled = cluster is not None or (workers or 1) > 1
+    result = measure_scaled(settings, workers, cluster) if scaled else measure(settings)
     if json_output:
-        sys.stdout.write(jsonfast.dumps(result.summary).decode() + "\n")
+        write_whole(jsonfast.dumps(result.summary).decode() + "\n")
     else:
         render_summary(result.summary)
     for note in run_notes(result.summary):
         say(note)
-    interrupt = result.summary.get("interrupt")
-    if interrupt:
-        say(f"Interrupted by {interrupt['signal']}: the summary covers the requests that finished.")
-        raise typer.Exit(EXIT_INTERRUPTED)
+    _exit_if_interrupted(result.summary)
     if result.summary.get("aborted"):
         raise typer.Exit(1)
 
@@ -416,7 +426,7 @@ def gate_command(
             say(f"No --base-url given: starting the bundled mock server (engine {mock_engine}) on loopback.")
         report = gate_measure(measure_settings, settings)
     if json_output:
-        sys.stdout.write(jsonfast.dumps(report.to_json()).decode() + "\n")
+        write_whole(jsonfast.dumps(report.to_json()).decode() + "\n")
     else:
         render_gate(report.to_json())
     for warning in deliver(report, outputs):
@@ -434,7 +444,7 @@ app.add_typer(history_app, name="history")
 @history_app.callback(invoke_without_command=True)
 def history_group(context: typer.Context) -> None:
     if context.invoked_subcommand is None:  # plain `loadrun history`: its help, exit 0
-        sys.stdout.write(context.get_help() + "\n")
+        write_whole(context.get_help() + "\n")
 
 _HistoryOption = Annotated[Path, typer.Option("--history", help="The history database.")]
 _DEFAULT_HISTORY = Path("runs") / "history.sqlite3"
@@ -459,7 +469,7 @@ def history_list_command(
     with History(history, create=False) as db:
         runs = db.find(_run_filter(target, profile, verdict, parse_since(since) if since else None, limit))
     if json_output:
-        sys.stdout.write("".join(jsonfast.dumps(run.brief()).decode() + "\n" for run in runs))
+        write_whole("".join(jsonfast.dumps(run.brief()).decode() + "\n" for run in runs))
     else:
         render_history([run.brief() for run in runs])
 
@@ -498,7 +508,7 @@ def history_trend_command(
         for row in rows
     ]
     if json_output:
-        sys.stdout.write("".join(jsonfast.dumps(point).decode() + "\n" for point in points))
+        write_whole("".join(jsonfast.dumps(point).decode() + "\n" for point in points))
     else:
         render_trend(labels, points)
     if svg is not None:
@@ -544,7 +554,7 @@ def history_show_command(
         "environment": run.environment,
         "gate": run.gate,
     }
-    sys.stdout.write(jsonfast.dumps(data).decode() + "\n")
+    write_whole(jsonfast.dumps(data).decode() + "\n")
 
 
 def _run_filter(
@@ -647,12 +657,167 @@ def compare_command(
 
     result = compare(settings, on_round=progress)
     if json_output:
-        sys.stdout.write(jsonfast.dumps(result.data).decode() + "\n")
+        write_whole(jsonfast.dumps(result.data).decode() + "\n")
     else:
         render_comparison(result.data)
     say(f"comparison folder {result.folder}")
     if result.report is not None:
         say(f"report            {result.report}")
+
+
+def _level_overrides(
+    concurrency: int | None,
+    rate: float | None,
+    requests: int | None,
+    duration: float | None,
+    warmup: float | None,
+    time_limit: float,
+) -> Any:
+    from loadrun.target_pool import LevelOverrides
+
+    return LevelOverrides(concurrency, rate, requests, duration, warmup, time_limit)
+
+
+_ConcurrencyOption = Annotated[
+    int | None, typer.Option("--concurrency", "-c", min=1, help="Closed loop: runs in flight.")
+]
+_RateOption = Annotated[float | None, typer.Option(help="Open loop: arrivals per second (Poisson).")]
+_RequestsOption = Annotated[int | None, typer.Option("--requests", "-n", min=1, help="Measured arrivals.")]
+_DurationOption = Annotated[float | None, typer.Option("--duration", "-d", min=0.1, help="Measured seconds.")]
+_WarmupOption = Annotated[float | None, typer.Option(min=0.0, help="Warm-up seconds.")]
+_TargetsOption = Annotated[
+    Path | None, typer.Option("--targets", help="Targets TOML instead of the one the profile names.")
+]
+
+
+@app.command("route")
+def route_command(
+    profile_path: Annotated[
+        Path, typer.Argument(metavar="PROFILE", help="Profile TOML with a [routing] table.")
+    ],
+    targets: _TargetsOption = None,
+    concurrency: _ConcurrencyOption = None,
+    rate: _RateOption = None,
+    requests: _RequestsOption = None,
+    duration: _DurationOption = None,
+    warmup: _WarmupOption = None,
+    metric: Annotated[
+        str, typer.Option(help="Latency metric of the frontier: ttft, itl, tpot, e2e.")
+    ] = "e2e",
+    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    json_output: Annotated[bool, typer.Option("--json", help="Print routed.json on stdout.")] = False,
+    time_limit: Annotated[float, typer.Option(min=1.0, help="Hard bound on the run, s.")] = 3600.0,
+    yes: Annotated[
+        bool, typer.Option("--yes", help="Confirm loading targets that are not on this machine.")
+    ] = False,
+) -> None:
+    """Split a profile's traffic across targets (by share or rule): blended latency and cost,
+    and with two targets the routing frontier (frontier.json, frontier.svg, frontier.png)."""
+    from loadrun.report.terminal import render_routed
+    from loadrun.routing import RouteSettings, load_routed_profile, run_routed
+
+    routed = load_routed_profile(profile_path, targets)
+    mocks = [spec.name for spec in routed.routing.specs() if spec.is_mock]
+    if mocks:
+        say(f"Starting the bundled mock server for {', '.join(mocks)} on loopback ports.")
+    overrides = _level_overrides(concurrency, rate, requests, duration, warmup, time_limit)
+    result = run_routed(
+        RouteSettings(
+            routed, overrides, out_dir=out, confirmed=yes, handle_signals=True, frontier_metric=metric
+        )
+    )
+    if json_output:
+        write_whole(jsonfast.dumps(result.data).decode() + "\n")
+    else:
+        render_routed(result.data)
+    say(f"run folder {result.folder}")
+    _exit_if_interrupted(result.data)
+
+
+@app.command("pipeline")
+def pipeline_command(
+    profile_path: Annotated[Path, typer.Argument(metavar="PROFILE", help="Profile TOML with a [pipeline].")],
+    targets: _TargetsOption = None,
+    concurrency: _ConcurrencyOption = None,
+    rate: _RateOption = None,
+    requests: _RequestsOption = None,
+    duration: _DurationOption = None,
+    warmup: _WarmupOption = None,
+    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    json_output: Annotated[bool, typer.Option("--json", help="Print pipeline.json on stdout.")] = False,
+    time_limit: Annotated[float, typer.Option(min=1.0, help="Hard bound on the run, s.")] = 3600.0,
+    yes: Annotated[
+        bool, typer.Option("--yes", help="Confirm loading targets that are not on this machine.")
+    ] = False,
+) -> None:
+    """Run a multi-call pipeline (one arrival = one run of all its stages): per stage and end
+    to end latency, failures by stage, tokens and cost per run."""
+    from loadrun.pipeline import PipelineSettings, load_pipeline_profile, run_pipeline
+    from loadrun.report.terminal import render_pipeline
+
+    pipeline = load_pipeline_profile(profile_path, targets)
+    mocks = [spec.name for spec in pipeline.specs() if spec.is_mock]
+    if mocks:
+        say(f"Starting the bundled mock server for {', '.join(mocks)} on loopback ports.")
+    overrides = _level_overrides(concurrency, rate, requests, duration, warmup, time_limit)
+    settings = PipelineSettings(pipeline, overrides, out_dir=out, confirmed=yes, handle_signals=True)
+    result = run_pipeline(settings)
+    if json_output:
+        write_whole(jsonfast.dumps(result.data).decode() + "\n")
+    else:
+        render_pipeline(result.data)
+    say(f"run folder {result.folder}")
+    _exit_if_interrupted(result.data)
+
+
+@app.command("frontier")
+def frontier_command(
+    first: Annotated[Path, typer.Argument(metavar="FOLDER", help="A comparison folder, or a run folder.")],
+    second: Annotated[
+        Path | None, typer.Argument(metavar="[SECOND_RUN]", help="The second run folder (two runs).")
+    ] = None,
+    names: Annotated[
+        list[str] | None, typer.Option("--target", help="Comparison: the two targets, in order (give twice).")
+    ] = None,
+    level: Annotated[
+        int | None, typer.Option(help="Comparison: the concurrency (default the first).")
+    ] = None,
+    cost: Annotated[
+        list[float] | None, typer.Option(min=0.0, help="Two runs: cost per request of each (give twice).")
+    ] = None,
+    metric: Annotated[str, typer.Option(help="Latency metric: ttft, itl, tpot, e2e.")] = "e2e",
+    out: Annotated[Path | None, typer.Option(help="Where to write; default the (first) folder.")] = None,
+) -> None:
+    """What-if routing between two measured targets: latency percentiles and blended cost for
+    every split from 0 to 100 %, with the frontier plot."""
+    from loadrun.frontier import (
+        frontier_table,
+        measured_from_compare,
+        measured_from_run,
+        routing_frontier,
+        write_frontier,
+    )
+    from loadrun.report.terminal import render_frontier_table
+
+    if second is None:
+        if not names or len(names) != 2:
+            raise UsageError("a comparison folder needs the two targets: --target A --target B")
+        measured = measured_from_compare(first, names[0], names[1], metric=metric, level=level)
+        source = f"comparison {first}"
+    else:
+        costs: list[float | None] = [*cost] if cost else [None, None]
+        if len(costs) != 2:
+            raise UsageError("give --cost twice (one per run) or not at all")
+        measured = (
+            measured_from_run(first, costs[0], metric=metric),
+            measured_from_run(second, costs[1], metric=metric),
+        )
+        source = f"runs {first} and {second}"
+    frontier = routing_frontier(*measured, metric=metric, source=source)
+    data = {"first": frontier.first, "second": frontier.second, "table": frontier_table(frontier)}
+    render_frontier_table(data, frontier.currency)
+    for path in write_frontier(out or first, frontier):
+        say(f"wrote {path}")
 
 
 @app.command("report")
@@ -843,7 +1008,7 @@ def capacity_command(
         say(f"No --base-url given: searching the bundled mock server (engine {mock_engine}) on loopback.")
     result = find_capacity(settings)
     if json_output:
-        sys.stdout.write(jsonfast.dumps(result.data).decode() + "\n")
+        write_whole(jsonfast.dumps(result.data).decode() + "\n")
     else:
         render_capacity(result.data)
     if result.folder is not None:
@@ -929,6 +1094,13 @@ def _replace_confirmed(settings: MeasureSettings) -> MeasureSettings:
 def _fail(kind: str, message: str, code: int) -> NoReturn:
     console(stderr=True).print(f"{kind}: {_one_line(message)}", markup=False, highlight=False)
     raise SystemExit(code)
+
+
+def _exit_if_interrupted(summary: dict[str, Any]) -> None:
+    interrupt = summary.get("interrupt")
+    if interrupt:
+        say(f"Interrupted by {interrupt['signal']}: the summary covers the requests that finished.")
+        raise typer.Exit(EXIT_INTERRUPTED)
 
 
 def _one_line(text: str) -> str:

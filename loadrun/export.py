@@ -24,6 +24,7 @@ import numpy as np
 
 from loadrun.compare import COMPARE_FILE
 from loadrun.errors import StoreError, UsageError
+from loadrun.scale import worker_records
 from loadrun.store import RECORDS_FILE, SUMMARY_FILE, RunFolder, read_records
 
 if TYPE_CHECKING:  # pandas is imported when an export runs: it is slow to import
@@ -42,7 +43,7 @@ def records_frame(folder: str | Path) -> pd.DataFrame:
     root = Path(folder)
     frames = []
     for labels, run in _runs(root):
-        rows = read_records(run / RECORDS_FILE) if (run / RECORDS_FILE).is_file() else []
+        rows = read_records(run / RECORDS_FILE) if (run / RECORDS_FILE).is_file() else worker_records(run)
         if rows:
             frame = pd.DataFrame([_derived(row) for row in rows])
             for column, value in reversed(list(labels.items())):

@@ -32,6 +32,7 @@ from typing import TYPE_CHECKING, Any
 
 from loadrun._version import __version__
 from loadrun.errors import TargetError, UsageError
+from loadrun.generator_health import generator_note
 from loadrun.history import History, HistoryRun, MetricPercentile, profile_hash, strip_credentials
 from loadrun.metrics import HistogramSet
 from loadrun.runner import MeasureSettings, measure
@@ -356,7 +357,13 @@ def validity_problems(summary: Mapping[str, Any], settings: GateSettings) -> lis
             f"({failed / measured:.1%} > {settings.max_error_rate:.1%})"
         )
     if (summary.get("generator") or {}).get("limited"):
-        problems.append("generator-limited: the load generator fell behind, its timings are not trustworthy")
+        problems.append(
+            "generator-limited: the load generator fell behind, its timings are not trustworthy"
+            f" ({generator_note(summary)})"
+        )
+    workers = summary.get("workers") or {}
+    if workers and not workers.get("complete", True):
+        problems.append("incomplete: " + "; ".join(workers.get("problems") or ["a worker did not finish"]))
     interrupt = summary.get("interrupt") or {}
     if interrupt.get("signal"):
         problems.append(f"interrupted by {interrupt['signal']}: the run did not finish")

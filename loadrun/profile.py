@@ -308,6 +308,9 @@ def profile_from_dict(
 ) -> Profile:
     """Validate a parsed TOML document; relative file names resolve against ``base_dir``."""
     reader = _Reader(source, base_dir or Path.cwd())
+    for section, command in (("pipeline", "loadrun pipeline"), ("routing", "loadrun route")):
+        if section in raw:  # several targets: their own loaders (pipeline.py, routing.py)
+            reader.fail(section, f"a profile with [{section}] runs with `{command}`")
     reader.only(raw, "", _TOP_KEYS)
     if "request" in raw and "classes" in raw:
         reader.fail("classes", "give either [request] (one class) or [[classes]] (a mix), not both")

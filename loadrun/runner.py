@@ -37,6 +37,7 @@ from loadrun.driver import (
     run_open_loop,
 )
 from loadrun.errors import TargetUnreachable, UsageError
+from loadrun.generator_health import CpuMeter, assess_generator
 from loadrun.history import HISTORY_FILE, record_run
 from loadrun.interrupt import SignalStop, signals_stop
 from loadrun.monitor import LoopLagMonitor
@@ -50,6 +51,7 @@ from loadrun.store import CONFIG_FILE, SUMMARY_FILE, RunFolder
 from loadrun.target import Target
 from loadrun.timeouts import Timeouts
 from loadrun.transports import make_transport
+from loadrun.wall_start import wait_until_wall
 from loadrun.workload import Conversation, Workload
 
 DEFAULT_MOCK_ENGINE = "small-fast"
@@ -111,6 +113,9 @@ class MeasureSettings:
     """The target's context window in tokens: a request that would exceed it is not sent."""
     calibrate_input: bool | None = None
     """Learn the target's tokens per word before the run; None: as the profile says."""
+    start_at_wall: float | None = None
+    """Begin the load at this wall-clock instant (time.time()), once everything else is
+    ready: how the shards of one level on several processes start together."""
 
     def effective_profile(self) -> Profile:
         if self.seed is None or self.seed == self.profile.seed:
@@ -302,6 +307,7 @@ async def _run_level(
         stop=stop,
     )
     monitor = LoopLagMonitor()
+    cpu = CpuMeter()
     breaker = _UnreachableBreaker(limit=max(20, 2 * _width(plan)), stop=stop)
     tally = ClassTally()
     monitor_stop = anyio.Event()
@@ -327,9 +333,13 @@ async def _run_level(
         _refuse_impossible(workload, settings.context_window)
         if folder is not None:
             folder.write_json(CONFIG_FILE, config)
+        if settings.start_at_wall is not None:
+            await wait_until_wall(settings.start_at_wall)
         async with anyio.create_task_group() as group:
             group.start_soon(monitor.run, monitor_stop)
             origin = time.perf_counter_ns()
+            origin_wall = time.time()
+            cpu.start()
             retries.origin_ns = origin
             if folder is not None:
                 folder.open_records(origin)
@@ -342,6 +352,7 @@ async def _run_level(
                 arrivals = _arrivals(plan, workload, profile.seed)
                 level = await run_open_loop(plan, client.execute, arrivals, on_record, stop=stop)
             monitor_stop.set()
+            cpu_used = cpu.stop()
     finally:
         await transport.aclose()
         retries.close()
@@ -357,6 +368,9 @@ async def _run_level(
     if settings.retry_rate_limited:
         summary["retries"] = retries.summary()
     summary["cancelled_in_flight"] = level.cancelled
+    # Judged last, once the open loop's send lateness is in: a saturated generator is flagged.
+    summary["generator"] = assess_generator(summary["generator"], cpu_used)
+    summary["origin_wall"] = round(origin_wall, 6)
     if signals is not None and signals.signal_name is not None:
         summary["interrupt"] = {"signal": signals.signal_name, "grace_s": settings.stop_grace_s}
     if folder is not None:

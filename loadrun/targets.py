@@ -391,23 +391,30 @@ class _Checker:
         return bool(value)
 
 
+class StartedTargets(list[Target]):
+    """The targets of a run, with the PIDs of the mock processes started for them."""
+
+    child_pids: tuple[int, ...] = ()
+
+
 @contextlib.contextmanager
-def started_targets(specs: Sequence[TargetSpec]) -> Iterator[list[Target]]:
+def started_targets(specs: Sequence[TargetSpec]) -> Iterator[StartedTargets]:
     """Targets ready to load: mock targets get their own mock process, stopped by PID on exit."""
     from loadrun.runner import embedded_mock
     from mock_server.launch import MockStartError
 
     with contextlib.ExitStack() as stack:
-        targets = []
+        targets = StartedTargets()
         for spec in specs:
             if spec.mock_engine is not None:
                 try:
-                    mock_target, _info = stack.enter_context(embedded_mock(spec.mock_engine))
+                    mock_target, info = stack.enter_context(embedded_mock(spec.mock_engine))
                 except MockStartError as exc:
                     raise TargetUnreachable(
                         f"target {spec.name}: the bundled mock did not start: {exc}"
                     ) from exc
                 targets.append(spec.target(mock_target.base_url))
+                targets.child_pids += (int(info["pid"]),)
             else:
                 targets.append(spec.target())
         yield targets

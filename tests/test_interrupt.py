@@ -238,3 +238,37 @@ def test_a_second_signal_after_the_run_loop_ended_still_exits_at_once() -> None:
     assert process.returncode == EXIT_INTERRUPTED, process.stderr
     assert "SIGINT again: exiting at once" in process.stderr and "not stopped" not in process.stdout
     assert_gone(int(process.stdout.split()[0]))  # the child was killed by its PID
+
+
+@pytest.mark.parametrize(
+    ("command", "profile", "written"),
+    [
+        ("pipeline", "passenger-letter-pipeline.toml", "pipeline.json"),
+        ("route", "harbour-desk-routed.toml", "routed.json"),
+    ],
+)
+def test_multi_target_runs_stop_the_same_way(
+    tmp_path: Path, command: str, profile: str, written: str
+) -> None:
+    shipped = Path(__file__).resolve().parent.parent / "profiles" / "multi-target" / profile
+    level = ["-c", "2", "-d", "60", "--warmup", "0", "--out", "out"]
+    process = subprocess.Popen(
+        [sys.executable, "-m", "loadrun", command, str(shipped), *level],
+        cwd=tmp_path,
+        stdin=subprocess.DEVNULL,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        start_new_session=True,
+    )
+    folder = run_folder_once_started(tmp_path, process)
+    first_record_written(folder, process, timeout_s=30)
+    process.send_signal(signal.SIGINT)
+    code, _stdout, stderr, _waited = finish(process, 30)
+    assert code == EXIT_INTERRUPTED, stderr
+    assert "Traceback" not in stderr and "Interrupted by SIGINT" in stderr
+    data = json.loads((folder / written).read_text())
+    assert data["interrupted"] is True and data["interrupt"]["signal"] == "SIGINT"
+    assert data["cancelled_in_flight"] == 0
+    rows = complete_lines(folder / "records.jsonl")
+    assert rows and all(row["outcome"] == "ok" for row in rows)

@@ -84,6 +84,16 @@ def test_every_command_with_a_sentinel_key_leaks_nothing(
     (tmp_path / "short.toml").write_text(
         'name = "pier-short"\n[request]\ninput_tokens = 16\noutput_tokens = 6\n'
     )
+    (tmp_path / "routed.toml").write_text(
+        'name = "wharf-routed"\n[request]\ninput_tokens = 16\noutput_tokens = 6\n[routing]\n'
+        'targets = "targets.toml"\n[[routing.routes]]\ntarget = "harbour-a"\nshare = 1\n'
+        '[[routing.routes]]\ntarget = "harbour-b"\nshare = 1\n'
+    )
+    (tmp_path / "steps.toml").write_text(
+        'name = "wharf-steps"\n[pipeline]\ntargets = "targets.toml"\n[[pipeline.stages]]\nname = "gist"\n'
+        'target = "harbour-a"\ninput_tokens = 16\noutput_tokens = 6\n[[pipeline.stages]]\nname = "reply"\n'
+        'target = "harbour-b"\ninput_from = "gist"\noutput_tokens = 6\n'
+    )
     loads = [
         ("measure", f"measure short.toml {target} -n 30 -c 3 --warmup 0 --out out --json"),
         ("measure", f"measure short.toml {target} -n 20 -c 2 --warmup 0 --out out --retry-rate-limited 1"),
@@ -99,6 +109,8 @@ def test_every_command_with_a_sentinel_key_leaks_nothing(
             "compare",
             "compare targets.toml short.toml -c 2 --rounds 1 -n 8 --warmup 0 --out out --resamples 200",
         ),
+        ("route", "route routed.toml -c 2 -n 12 --warmup 0 --out out"),
+        ("pipeline", "pipeline steps.toml -c 2 -n 6 --warmup 0 --out out"),
     ]
     streams: list[str] = []
     covered = set()
@@ -123,6 +135,7 @@ def test_every_command_with_a_sentinel_key_leaks_nothing(
         ("history pin", f"history pin 1 {history}", 0),
         ("report", f"report {run_folder}", 0),
         ("export", f"export {run_folder} --format csv", 0),
+        ("frontier", f"frontier {run_folder} {run_folder} --cost 0.001 --cost 0.002", 0),
         # Refusals and failures carry messages: they must not quote the key either.
         (
             "measure",

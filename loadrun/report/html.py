@@ -26,6 +26,7 @@ from loadrun._version import __version__
 from loadrun.caution import CAUTION
 from loadrun.compare import COMPARE_FILE, MetricSamples, target_aggregate
 from loadrun.errors import StoreError, UsageError
+from loadrun.generator_health import generator_note
 from loadrun.metrics import LATENCY_METRICS
 from loadrun.store import RECORDS_FILE, SUMMARY_FILE, RunFolder, read_records
 from loadrun.targets import TargetSpec
@@ -155,8 +156,12 @@ def _run_view(root: Path, summary: Mapping[str, Any]) -> dict[str, Any]:
     level = {"concurrency": concurrency, "targets": {name: aggregate}, "pairs": []}
     profile = summary.get("profile", {})
     cautions = [CAUTION]
-    if summary.get("generator", {}).get("limited"):
-        cautions.append("The generator was limited (its event loop lagged): timings are not trustworthy.")
+    generator_verdict = generator_note(summary)
+    if generator_verdict is not None:
+        cautions.append(f"The load generator: {generator_verdict}")
+    workers = summary.get("workers") or {}
+    for problem in workers.get("problems", []):
+        cautions.append(f"Workers: {problem}")
     if summary.get("interrupted"):
         cautions.append("The run was interrupted: the summary covers what was measured until then.")
     if summary.get("aborted"):
@@ -484,7 +489,9 @@ def _capacity_markers(data: Mapping[str, Any]) -> dict[str, float]:
 def _records(folder: Path) -> list[dict[str, Any]]:
     path = folder / RECORDS_FILE
     if not path.is_file():
-        return []
+        from loadrun.scale import worker_records  # a run split across workers keeps theirs
+
+        return worker_records(folder)
     try:
         return read_records(path)
     except (OSError, ValueError) as exc:

@@ -9,6 +9,7 @@ from rich import box
 from rich.console import Console
 from rich.table import Table
 
+from loadrun.generator_health import generator_note
 from loadrun.metrics import LATENCY_METRICS
 
 _PERCENTILE_KEYS = ("p50_ms", "p90_ms", "p95_ms", "p99_ms", "p99.9_ms", "mean_ms")
@@ -82,9 +83,22 @@ def render_summary(summary: dict[str, Any], out: Console | None = None) -> None:
     health = "[red]GENERATOR-LIMITED: timings are not trustworthy[/]" if generator.get("limited") else "ok"
     receive = generator.get("receive_error_p99_ms")
     receive_text = f", receive error p99 {receive:.2f} ms" if receive is not None else ""
-    out.print(
-        f"generator   {health} (loop lag p99 {generator.get('loop_lag_p99_ms', 0):.2f} ms{receive_text})"
-    )
+    cpu_share = generator.get("cpu_share")
+    cpu_text = f", CPU {100 * cpu_share:.0f} % of one core" if cpu_share is not None else ""
+    lag = generator.get("loop_lag_p99_ms", 0)
+    out.print(f"generator   {health} (loop lag p99 {lag:.2f} ms{receive_text}{cpu_text})")
+    note = generator_note(summary)
+    if note is not None:
+        out.print(f"            [{'red' if generator.get('limited') else 'yellow'}]{note}[/]")
+    workers = summary.get("workers")
+    if workers:
+        state = "complete" if workers.get("complete") else "[red]INCOMPLETE[/]"
+        out.print(
+            f"workers     {workers['count']} ({workers['mode']}), {state}, start skew "
+            f"{_ms_text(workers.get('start_skew_ms'))} (tolerance {workers['start_skew_tolerance_ms']:g} ms)"
+        )
+        for problem in workers.get("problems", []):
+            out.print(f"            [red]{problem}[/]")
     if summary.get("interrupted"):
         out.print("[yellow]interrupted: the summary covers what was measured until then[/]")
     if summary.get("aborted"):
@@ -388,3 +402,156 @@ def render_capacity(data: dict[str, Any], out: Console | None = None) -> None:
     if data.get("run_folder"):
         plots = ", ".join(data.get("plots", [])) or "none"
         out.print(f"run folder  {data['run_folder']} (plots: {plots})", markup=False)
+
+
+def _ms_text(value: float | None) -> str:
+    return f"{value:.1f} ms" if value is not None else "unknown"
+
+
+# --- routed mixes, pipelines, routing frontier -------------------------------------------
+
+_MIX_KEYS = ("p50_ms", "p95_ms", "p99_ms")
+
+
+def _money(value: float | None, digits: int = 6) -> str:
+    return f"{value:.{digits}f}" if value is not None else "-"
+
+
+def _latency_row(latency: dict[str, Any]) -> list[str]:
+    return [_fmt(latency.get(metric, {}).get(key)) for metric in ("ttft", "e2e") for key in _MIX_KEYS]
+
+
+def _latency_columns(table: Table) -> None:
+    for metric in ("TTFT", "E2E"):
+        for key in _MIX_KEYS:
+            table.add_column(f"{metric} {key.removesuffix('_ms')}", justify="right")
+
+
+def render_routed(data: dict[str, Any], out: Console | None = None) -> None:
+    """A routed mix: the blended figures first, then each target, then the frontier table."""
+    out = out or console()
+    blended = data["blended"]
+    cost = blended["cost"]
+    currency = cost.get("currency") or ""
+    routing = data.get("routing", {})
+    out.print(
+        f"[bold]{data['profile']['name']}[/] routed by {routing.get('by')} over "
+        f"{len(data['targets'])} targets, measured {data['window']['seconds']:.1f} s"
+    )
+    table = Table(title="latency in ms; cost per request", title_justify="left", show_edge=False)
+    table.add_column("", no_wrap=True)
+    table.add_column("share", justify="right")
+    table.add_column("n", justify="right")
+    table.add_column("failed", justify="right")
+    _latency_columns(table)
+    table.add_column(f"{currency} per request", justify="right")
+    table.add_column(f"{currency} per M tokens", justify="right")
+    table.add_row(
+        "[bold]blended mix[/]",
+        "100 %",
+        str(blended["requests"]["measured"]),
+        str(blended["requests"]["failed"]),
+        *_latency_row(blended["latency"]),
+        _money(cost.get("cost_per_request")),
+        _money(cost.get("cost_per_million_tokens"), 4),
+    )
+    for name, entry in data["targets"].items():
+        share = entry.get("share_of_requests")
+        bill = entry["bill"]
+        table.add_row(
+            name,
+            f"{share:.1%}" if share is not None else "-",
+            str(entry["requests"]["measured"]),
+            str(entry["requests"]["failed"]),
+            *_latency_row(entry["latency"]),
+            _money(bill.get("cost_per_request")),
+            _money(bill.get("cost_per_million_tokens"), 4),
+        )
+    out.print(table)
+    frontier = data.get("frontier", {})
+    if frontier.get("available"):
+        render_frontier_table(frontier, currency, out)
+        if frontier.get("caution"):
+            out.print(f"[yellow]Caution:[/] {frontier['caution']}.")
+    elif frontier.get("why_not"):
+        out.print(f"[dim]no routing frontier: {frontier['why_not']}[/]")
+
+
+def render_frontier_table(frontier: dict[str, Any], currency: str, out: Console | None = None) -> None:
+    """A few splits of a routing frontier (``table`` rows of frontier.json points)."""
+    out = out or console()
+    table = Table(
+        title=f"what-if: share of requests to {frontier['second']}, the rest to {frontier['first']} (ms)",
+        title_justify="left",
+        show_edge=False,
+    )
+    table.add_column("share", justify="right")
+    for key in _MIX_KEYS:
+        table.add_column(key.removesuffix("_ms"), justify="right")
+    table.add_column(f"{currency} per request", justify="right")
+    table.add_column(f"{currency} per M tokens", justify="right")
+    table.add_column("not beaten on both", justify="center")
+    for row in frontier["table"]:
+        table.add_row(
+            f"{row['share_second']:.0%}",
+            *(_fmt(row.get(key)) for key in _MIX_KEYS),
+            _money(row.get("cost_per_request")),
+            _money(row.get("cost_per_million_tokens"), 4),
+            "yes" if row.get("on_frontier") else "",
+        )
+    out.print(table)
+
+
+def render_pipeline(data: dict[str, Any], out: Console | None = None) -> None:
+    """A pipeline run: per stage and end to end, failures by stage, tokens and cost per run."""
+    out = out or console()
+    per_run = data["per_run"]
+    currency = per_run.get("currency") or ""
+    runs = data["end_to_end"]["runs"]
+    out.print(
+        f"[bold]{data['profile']['name']}[/]: {len(data['stages'])} stages, {runs['measured']} pipeline runs "
+        f"measured in {data['window']['seconds']:.1f} s ({runs['failed']} failed)"
+    )
+    table = Table(title="latency in ms", title_justify="left", show_edge=False)
+    table.add_column("stage", no_wrap=True)
+    table.add_column("target", no_wrap=True)
+    table.add_column("n", justify="right")
+    table.add_column("error share", justify="right")
+    _latency_columns(table)
+    table.add_column("tokens per request", justify="right")
+    for name, stage in data["stages"].items():
+        share = stage.get("error_share")
+        table.add_row(
+            name,
+            stage["target"],
+            str(stage["requests"]["measured"]),
+            f"{share:.1%}" if share is not None else "-",
+            *_latency_row(stage["latency"]),
+            _fmt(stage.get("tokens_per_request")),
+        )
+    failed = runs["failed"] / runs["measured"] if runs["measured"] else None
+    table.add_row(
+        "[bold]end to end[/]",
+        "",
+        str(runs["measured"]),
+        f"{failed:.1%}" if failed is not None else "-",
+        *_latency_row(data["end_to_end"]["latency"]),
+        _fmt(per_run.get("tokens")),
+    )
+    out.print(table)
+    failures = [
+        f"{name} {entry['failed']}" for name, entry in data["failed_runs_by_stage"].items() if entry["failed"]
+    ]
+    out.print(f"Failed runs by stage: {', '.join(failures) if failures else 'none'}.")
+    for name, stage in data["stages"].items():
+        if stage.get("routes"):
+            taken = ", ".join(f"{label} {count}" for label, count in stage["routes"].items())
+            out.print(f"Routes from {name}: {taken}.", markup=False)
+        compliance = stage.get("compliance")
+        if compliance:
+            checked = sum(compliance.values())
+            out.print(f"Answers of {name}: {compliance.get('compliant', 0)} of {checked} passed the check.")
+    out.print(
+        f"Per pipeline run: {_fmt(per_run.get('tokens'))} tokens, {_money(per_run.get('cost'))} {currency} "
+        f"({_money(per_run.get('cost_per_million_tokens'), 4)} {currency} per million tokens)."
+    )

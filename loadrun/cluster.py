@@ -1,0 +1,140 @@
+"""Shards on a Dask distributed cluster (``--cluster ADDRESS``).
+
+Dask is the distributed engine users already run; loadrun only submits one task per
+shard, each pinned to a different Dask worker (two shards in one worker process would
+share its interpreter lock and time each other badly). Before the clock starts, every
+Dask worker imports loadrun, so the start instant, picked a little in the future, only
+has to cover the submission. A shard whose Dask worker leaves the cluster, or whose task
+fails, is reported; its run folder on that worker's machine keeps the records it flushed.
+"""
+
+from __future__ import annotations
+
+import socket
+import time
+import uuid
+from collections.abc import Sequence
+from typing import Any
+
+from loadrun.errors import UsageError
+from loadrun.shard_worker import ShardResult, run_shard
+from loadrun.shards import ShardSpec
+
+__all__ = ["cluster_size", "run_on_dask"]
+
+_POLL_S = 0.05
+"""How often the coordinator looks at its futures (it has nothing else to do)."""
+_CHECK_WORKERS_S = 0.5
+"""How often it asks the scheduler which workers are still there."""
+
+
+def _warm() -> str:
+    """Run on every Dask worker before the start: import what a shard needs."""
+    import loadrun.shard_worker  # noqa: F401
+
+    return socket.gethostname()
+
+
+def _connect(address: str, connect_timeout_s: float) -> Any:
+    try:
+        from distributed import Client
+    except ImportError as exc:  # pragma: no cover - a dependency of loadrun
+        raise UsageError(f"--cluster needs Dask's distributed package: {exc}") from exc
+    try:
+        # Through Any: whether Client's signature is typed differs between Dask releases.
+        connect: Any = Client
+        return connect(address, timeout=connect_timeout_s, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise UsageError(f"cannot reach a Dask scheduler at {address}: {exc}") from exc
+
+
+def cluster_size(address: str, connect_timeout_s: float = 10.0) -> int:
+    """How many Dask workers the cluster at ``address`` has now."""
+    with _connect(address, connect_timeout_s) as client:
+        return len(client.scheduler_info(n_workers=-1)["workers"])
+
+
+def run_on_dask(
+    address: str,
+    specs: Sequence[ShardSpec],
+    deadline_s: float,
+    lead_s: float,
+    connect_timeout_s: float = 10.0,
+) -> tuple[list[ShardResult], float]:
+    """Run each shard on its own Dask worker; returns the results and the agreed start instant
+    (``lead_s`` after the submission: the scheduler must hand every task to its worker)."""
+    with _connect(address, connect_timeout_s) as client:
+        workers = sorted(client.scheduler_info(n_workers=-1)["workers"])
+        if len(workers) < len(specs):
+            raise UsageError(
+                f"{len(specs)} shards need as many Dask workers; the cluster at {address} has {len(workers)}"
+            )
+        client.run(_warm, workers=workers[: len(specs)])
+        start_at = time.time() + lead_s
+        host = socket.gethostname()
+        run_id = uuid.uuid4().hex[:8]
+        futures = {
+            spec.index: client.submit(
+                run_shard,
+                spec,
+                start_at,
+                host,
+                key=f"loadrun-{run_id}-{spec.name}",
+                workers=[worker],
+                allow_other_workers=False,
+                pure=False,
+                retries=0,
+            )
+            for spec, worker in zip(specs, workers, strict=False)
+        }
+        assigned = dict(zip((spec.index for spec in specs), workers, strict=False))
+        results = _collect(client, specs, futures, assigned, start_at + deadline_s)
+        return [results[spec.index] for spec in specs], start_at
+
+
+def _collect(
+    client: Any,
+    specs: Sequence[ShardSpec],
+    futures: dict[int, Any],
+    assigned: dict[int, str],
+    give_up_wall: float,
+) -> dict[int, ShardResult]:
+    results: dict[int, ShardResult] = {}
+    names = {spec.index: spec.name for spec in specs}
+    while len(results) < len(futures):
+        pending = [future for index, future in futures.items() if index not in results]
+        polls = 0
+        while polls * _POLL_S < _CHECK_WORKERS_S and all(not future.done() for future in pending):
+            time.sleep(_POLL_S)
+            polls += 1
+        alive = set(client.scheduler_info(n_workers=-1)["workers"])
+        over = time.time() > give_up_wall
+        for index, future in futures.items():
+            if index in results:
+                continue
+            worker = assigned[index]
+            if future.status == "finished":
+                results[index] = future.result()
+            elif future.status in ("error", "cancelled"):
+                results[index] = _lost(index, worker, f"its task failed: {_exception_text(future)}")
+            elif worker not in alive:
+                future.cancel()
+                results[index] = _lost(index, worker, f"Dask worker {worker} left the cluster during the run")
+            elif over:
+                future.cancel()
+                results[index] = _lost(index, worker, "still running at the run's time limit: cancelled")
+            if index in results and results[index].error and not results[index].finished:
+                results[index].error = f"worker {names[index]}: {results[index].error}"
+    return results
+
+
+def _lost(index: int, worker: str, why: str) -> ShardResult:
+    return ShardResult(index=index, host=worker, pid=0, error=why)
+
+
+def _exception_text(future: Any) -> str:
+    try:
+        exc = future.exception(timeout=1.0)
+    except Exception as error:  # the reason itself could not be fetched: say so
+        return f"(unknown: {type(error).__name__})"
+    return f"{type(exc).__name__}: {exc}"
