@@ -13,6 +13,28 @@ import typer
 
 from loadrun import jsonfast
 from loadrun.caution import cap_excess
+from loadrun.cli_options import (
+    ApiKeyEnvOption,
+    BaseUrlOption,
+    ConnectTimeoutOption,
+    DurationOption,
+    ExceedRemoteCapsOption,
+    HeaderOption,
+    InputTokensOption,
+    InsecureOption,
+    MockEngineOption,
+    ModelOption,
+    OutOption,
+    OutputTokensOption,
+    PriceInputOption,
+    PriceOutputOption,
+    RequestsOption,
+    TimeLimitOption,
+    TimeoutOption,
+    TransportOption,
+    WarmupOption,
+    YesOption,
+)
 from loadrun.errors import LoadrunError, UsageError
 from loadrun.interrupt import EXIT_INTERRUPTED
 from loadrun.profile import ARRIVALS, Profile, load_profile
@@ -21,7 +43,6 @@ from loadrun.runner import DEFAULT_MOCK_ENGINE, MeasureSettings, describe_plan, 
 from loadrun.scale import measure_scaled
 from loadrun.slo import Slo
 from loadrun.target import Target
-from loadrun.transports import TRANSPORT_NAMES
 from loadrun.whole_output import write_whole
 
 app = typer.Typer(
@@ -37,22 +58,16 @@ def measure_command(
     profile_path: Annotated[
         Path | None, typer.Argument(metavar="[PROFILE]", help="Profile TOML; default: a short chat.")
     ] = None,
-    base_url: Annotated[str | None, typer.Option(help="API base URL, e.g. http://127.0.0.1:8000/v1.")] = None,
-    model: Annotated[str | None, typer.Option(help="Model name to request.")] = None,
-    api_key_env: Annotated[
-        str | None, typer.Option(help="NAME of the environment variable holding the API key.")
-    ] = None,
-    header: Annotated[
-        list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")
-    ] = None,
+    base_url: BaseUrlOption = None,
+    model: ModelOption = None,
+    api_key_env: ApiKeyEnvOption = None,
+    header: HeaderOption = None,
     concurrency: Annotated[
         int | None, typer.Option("--concurrency", "-c", min=1, help="Closed loop: requests in flight.")
     ] = None,
     rate: Annotated[
         float | None,
-        typer.Option(
-            help="Open loop: new conversations per second (Poisson unless --arrival)."
-        ),
+        typer.Option(help="Open loop: new conversations per second (Poisson unless --arrival)."),
     ] = None,
     arrival: Annotated[
         str | None, typer.Option(help=f"Arrival process: {', '.join(ARRIVALS)}; default: the profile's.")
@@ -78,21 +93,11 @@ def measure_command(
     seed: Annotated[
         int | None, typer.Option(help="Seed of the request sequence (overrides the profile's).")
     ] = None,
-    requests: Annotated[
-        int | None, typer.Option("--requests", "-n", min=1, help="Measured requests.")
-    ] = None,
-    duration: Annotated[
-        float | None, typer.Option("--duration", "-d", min=0.1, help="Measured seconds.")
-    ] = None,
-    warmup: Annotated[
-        float | None, typer.Option(min=0.0, help="Warm-up seconds, kept out of the measurement.")
-    ] = None,
-    input_tokens: Annotated[
-        int | None, typer.Option(min=1, help="Fixed input length for every request class.")
-    ] = None,
-    output_tokens: Annotated[
-        int | None, typer.Option(min=1, help="Fixed max_tokens for every request class.")
-    ] = None,
+    requests: RequestsOption = None,
+    duration: DurationOption = None,
+    warmup: WarmupOption = None,
+    input_tokens: InputTokensOption = None,
+    output_tokens: OutputTokensOption = None,
     context_window: Annotated[
         int | None, typer.Option(min=1, help="The target's context window: longer requests are not sent.")
     ] = None,
@@ -107,27 +112,19 @@ def measure_command(
         list[str] | None, typer.Option(help="Per-request SLO for goodput, METRIC=MS (ttft, tpot, itl, e2e).")
     ] = None,
     json_output: Annotated[bool, typer.Option("--json", help="Print the summary as JSON on stdout.")] = False,
-    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    out: OutOption = Path("runs"),
     no_save: Annotated[bool, typer.Option("--no-save", help="Write no run folder.")] = False,
     history: Annotated[
         Path | None, typer.Option(help="History database; default: OUT/history.sqlite3 (none if --no-save).")
     ] = None,
     no_history: Annotated[bool, typer.Option("--no-history", help="Store no row in the history.")] = False,
-    transport: Annotated[str, typer.Option(help=f"Transport: {' or '.join(TRANSPORT_NAMES)}.")] = "fast",
-    mock_engine: Annotated[
-        str, typer.Option(help="Engine preset or TOML of the bundled mock.")
-    ] = DEFAULT_MOCK_ENGINE,
-    timeout: Annotated[float, typer.Option(min=0.001, help="Seconds a whole request may take.")] = 600.0,
-    connect_timeout: Annotated[float, typer.Option(min=0.001, help="Seconds to open a connection.")] = 10.0,
-    time_limit: Annotated[
-        float, typer.Option(min=1.0, help="Hard bound on the whole run, seconds.")
-    ] = 3600.0,
-    insecure_skip_tls_verify: Annotated[
-        bool, typer.Option("--insecure-skip-tls-verify", help="Turn TLS certificate checks off.")
-    ] = False,
-    yes: Annotated[
-        bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")
-    ] = False,
+    transport: TransportOption = "fast",
+    mock_engine: MockEngineOption = DEFAULT_MOCK_ENGINE,
+    timeout: TimeoutOption = 600.0,
+    connect_timeout: ConnectTimeoutOption = 10.0,
+    time_limit: TimeLimitOption = 3600.0,
+    insecure_skip_tls_verify: InsecureOption = False,
+    yes: YesOption = False,
     first_token_timeout: Annotated[
         float | None, typer.Option(min=0.001, help="Seconds from the send to the first token (streamed).")
     ] = None,
@@ -143,15 +140,9 @@ def measure_command(
     stop_grace: Annotated[
         float, typer.Option(min=0.0, help="After Ctrl-C or SIGTERM, seconds in-flight requests may finish.")
     ] = 30.0,
-    price_input: Annotated[
-        float | None, typer.Option(min=0.0, help="Price per million input tokens (cost estimate).")
-    ] = None,
-    price_output: Annotated[
-        float | None, typer.Option(min=0.0, help="Price per million output tokens (cost estimate).")
-    ] = None,
-    exceed_remote_caps: Annotated[
-        bool, typer.Option("--exceed-remote-caps", help="Lift the load caps for a remote target.")
-    ] = False,
+    price_input: PriceInputOption = None,
+    price_output: PriceOutputOption = None,
+    exceed_remote_caps: ExceedRemoteCapsOption = False,
     allow_key_over_http_to: Annotated[
         str | None,
         typer.Option(help="HOST to which the API key may go over plain http (named, never implied)."),
@@ -235,7 +226,7 @@ def calibrate_command(
     max_streams: Annotated[int, typer.Option(min=10, help="Highest stream count to try.")] = 800,
     seconds: Annotated[float, typer.Option(min=1.0, help="Measured seconds per level.")] = 4.0,
     limit_ms: Annotated[float, typer.Option(min=0.01, help="Receive-error p99 limit, ms.")] = 1.0,
-    transport: Annotated[str, typer.Option(help=f"Transport: {' or '.join(TRANSPORT_NAMES)}.")] = "fast",
+    transport: TransportOption = "fast",
 ) -> None:
     """Find how many streams this machine times within the limit, against the bundled mock."""
     from loadrun.calibrate import DEFAULT_LEVELS, CalibrationSettings, calibrate
@@ -325,46 +316,26 @@ def gate_command(
     ] = None,
     webhook_timeout: Annotated[float, typer.Option(min=0.1, help="Seconds per webhook attempt.")] = 10.0,
     webhook_retries: Annotated[int, typer.Option(min=0, help="Webhook attempts after a failed one.")] = 2,
-    base_url: Annotated[str | None, typer.Option(help="API base URL, e.g. http://127.0.0.1:8000/v1.")] = None,
-    model: Annotated[str | None, typer.Option(help="Model name to request.")] = None,
-    api_key_env: Annotated[
-        str | None, typer.Option(help="NAME of the environment variable holding the API key.")
-    ] = None,
-    header: Annotated[
-        list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")
-    ] = None,
+    base_url: BaseUrlOption = None,
+    model: ModelOption = None,
+    api_key_env: ApiKeyEnvOption = None,
+    header: HeaderOption = None,
     concurrency: Annotated[
         int | None, typer.Option("--concurrency", "-c", min=1, help="Requests in flight.")
     ] = None,
-    requests: Annotated[
-        int | None, typer.Option("--requests", "-n", min=1, help="Measured requests.")
-    ] = None,
-    duration: Annotated[
-        float | None, typer.Option("--duration", "-d", min=0.1, help="Measured seconds.")
-    ] = None,
-    warmup: Annotated[
-        float | None, typer.Option(min=0.0, help="Warm-up seconds, kept out of the measurement.")
-    ] = None,
-    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    requests: RequestsOption = None,
+    duration: DurationOption = None,
+    warmup: WarmupOption = None,
+    out: OutOption = Path("runs"),
     no_save: Annotated[bool, typer.Option("--no-save", help="Write no run folder (history still).")] = False,
-    transport: Annotated[str, typer.Option(help=f"Transport: {' or '.join(TRANSPORT_NAMES)}.")] = "fast",
-    mock_engine: Annotated[
-        str, typer.Option(help="Engine preset or TOML of the bundled mock.")
-    ] = DEFAULT_MOCK_ENGINE,
-    timeout: Annotated[float, typer.Option(min=0.001, help="Seconds a whole request may take.")] = 600.0,
-    connect_timeout: Annotated[float, typer.Option(min=0.001, help="Seconds to open a connection.")] = 10.0,
-    time_limit: Annotated[
-        float, typer.Option(min=1.0, help="Hard bound on the whole run, seconds.")
-    ] = 3600.0,
-    insecure_skip_tls_verify: Annotated[
-        bool, typer.Option("--insecure-skip-tls-verify", help="Turn TLS certificate checks off.")
-    ] = False,
-    yes: Annotated[
-        bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")
-    ] = False,
-    exceed_remote_caps: Annotated[
-        bool, typer.Option("--exceed-remote-caps", help="Lift the load caps for a remote target.")
-    ] = False,
+    transport: TransportOption = "fast",
+    mock_engine: MockEngineOption = DEFAULT_MOCK_ENGINE,
+    timeout: TimeoutOption = 600.0,
+    connect_timeout: ConnectTimeoutOption = 10.0,
+    time_limit: TimeLimitOption = 3600.0,
+    insecure_skip_tls_verify: InsecureOption = False,
+    yes: YesOption = False,
+    exceed_remote_caps: ExceedRemoteCapsOption = False,
 ) -> None:
     """Run a profile (or take a finished run) and compare it with its baseline.
 
@@ -445,6 +416,7 @@ app.add_typer(history_app, name="history")
 def history_group(context: typer.Context) -> None:
     if context.invoked_subcommand is None:  # plain `loadrun history`: its help, exit 0
         write_whole(context.get_help() + "\n")
+
 
 _HistoryOption = Annotated[Path, typer.Option("--history", help="The history database.")]
 _DEFAULT_HISTORY = Path("runs") / "history.sqlite3"
@@ -598,7 +570,7 @@ def compare_command(
     ] = None,
     resamples: Annotated[int, typer.Option(min=200, help="Bootstrap resamples.")] = 4000,
     seed: Annotated[int, typer.Option(help="Seed of the bootstrap.")] = 0,
-    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    out: OutOption = Path("runs"),
     json_output: Annotated[bool, typer.Option("--json", help="Print compare.json on stdout.")] = False,
     time_limit: Annotated[float, typer.Option(min=1.0, help="Hard bound on the comparison, s.")] = 3600.0,
     yes: Annotated[
@@ -704,7 +676,7 @@ def route_command(
     metric: Annotated[
         str, typer.Option(help="Latency metric of the frontier: ttft, itl, tpot, e2e.")
     ] = "e2e",
-    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    out: OutOption = Path("runs"),
     json_output: Annotated[bool, typer.Option("--json", help="Print routed.json on stdout.")] = False,
     time_limit: Annotated[float, typer.Option(min=1.0, help="Hard bound on the run, s.")] = 3600.0,
     yes: Annotated[
@@ -743,7 +715,7 @@ def pipeline_command(
     requests: _RequestsOption = None,
     duration: _DurationOption = None,
     warmup: _WarmupOption = None,
-    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    out: OutOption = Path("runs"),
     json_output: Annotated[bool, typer.Option("--json", help="Print pipeline.json on stdout.")] = False,
     time_limit: Annotated[float, typer.Option(min=1.0, help="Hard bound on the run, s.")] = 3600.0,
     yes: Annotated[
@@ -857,14 +829,10 @@ def capacity_command(
             help="SLO, repeatable: METRIC[:pNN]=MS (ttft, itl, tpot, e2e; p99 if no pNN) or errors=PERCENT."
         ),
     ] = None,
-    base_url: Annotated[str | None, typer.Option(help="API base URL, e.g. http://127.0.0.1:8000/v1.")] = None,
-    model: Annotated[str | None, typer.Option(help="Model name to request.")] = None,
-    api_key_env: Annotated[
-        str | None, typer.Option(help="NAME of the environment variable holding the API key.")
-    ] = None,
-    header: Annotated[
-        list[str] | None, typer.Option(help="Extra request header 'Name: value' (repeatable).")
-    ] = None,
+    base_url: BaseUrlOption = None,
+    model: ModelOption = None,
+    api_key_env: ApiKeyEnvOption = None,
+    header: HeaderOption = None,
     axis: Annotated[
         str, typer.Option(help="Load axis: concurrency (requests in flight) or rate (Poisson arrivals/s).")
     ] = "concurrency",
@@ -880,12 +848,8 @@ def capacity_command(
     budget_money: Annotated[
         float | None, typer.Option(min=0.0, help="Most money at the target's token prices (--price-*).")
     ] = None,
-    price_input: Annotated[
-        float | None, typer.Option(min=0.0, help="The target's price per million input tokens.")
-    ] = None,
-    price_output: Annotated[
-        float | None, typer.Option(min=0.0, help="The target's price per million output tokens.")
-    ] = None,
+    price_input: PriceInputOption = None,
+    price_output: PriceOutputOption = None,
     headroom: Annotated[
         float, typer.Option(min=0.0, max=0.95, help="Share of capacity kept free at the operating point.")
     ] = 0.2,
@@ -906,27 +870,17 @@ def capacity_command(
     hosted_output_price: Annotated[
         float | None, typer.Option(min=0.0, help="A hosted API's price per million output tokens.")
     ] = None,
-    input_tokens: Annotated[
-        int | None, typer.Option(min=1, help="Override the profile's input length.")
-    ] = None,
-    output_tokens: Annotated[
-        int | None, typer.Option(min=1, help="Override the profile's max_tokens.")
-    ] = None,
+    input_tokens: InputTokensOption = None,
+    output_tokens: OutputTokensOption = None,
     json_output: Annotated[bool, typer.Option("--json", help="Print the result as JSON on stdout.")] = False,
-    out: Annotated[Path, typer.Option(help="Folder for run folders.")] = Path("runs"),
+    out: OutOption = Path("runs"),
     no_save: Annotated[bool, typer.Option("--no-save", help="Write no run folder (and no plots).")] = False,
-    transport: Annotated[str, typer.Option(help=f"Transport: {' or '.join(TRANSPORT_NAMES)}.")] = "fast",
-    mock_engine: Annotated[
-        str, typer.Option(help="Engine preset or TOML of the bundled mock.")
-    ] = DEFAULT_MOCK_ENGINE,
-    timeout: Annotated[float, typer.Option(min=0.001, help="Seconds a whole request may take.")] = 120.0,
-    connect_timeout: Annotated[float, typer.Option(min=0.001, help="Seconds to open a connection.")] = 10.0,
-    insecure_skip_tls_verify: Annotated[
-        bool, typer.Option("--insecure-skip-tls-verify", help="Turn TLS certificate checks off.")
-    ] = False,
-    yes: Annotated[
-        bool, typer.Option("--yes", help="Confirm loading a target that is not on this machine.")
-    ] = False,
+    transport: TransportOption = "fast",
+    mock_engine: MockEngineOption = DEFAULT_MOCK_ENGINE,
+    timeout: TimeoutOption = 120.0,
+    connect_timeout: ConnectTimeoutOption = 10.0,
+    insecure_skip_tls_verify: InsecureOption = False,
+    yes: YesOption = False,
 ) -> None:
     """Find how much load one replica holds within its SLOs; advise on scale-out and cost."""
     from dataclasses import replace

@@ -22,6 +22,7 @@ import os
 import signal
 import sys
 from collections.abc import Iterator
+from typing import Any
 
 import anyio
 
@@ -74,6 +75,53 @@ class SignalStop:
 
     def _on_late_signal(self, signum: int, _frame: object) -> None:
         self._on_signal(signal.Signals(signum))
+
+
+class ForwardedStop:
+    """For a coordinator of worker processes (plain code, no event loop): the first
+    SIGINT/SIGTERM is passed on to the workers as SIGTERM, so each stops the way a lone run
+    does and sends back its summary marked interrupted; the second kills the workers and
+    ``child_pids`` by PID and exits at once."""
+
+    def __init__(self, child_pids: tuple[int, ...] = ()) -> None:
+        self.child_pids = child_pids
+        self.worker_pids: tuple[int, ...] = ()
+        self.signal_name: str | None = None
+
+    def _on_signal(self, signum: int, _frame: object) -> None:
+        name = signal.Signals(signum).name
+        if self.signal_name is None:
+            self.signal_name = name
+            _tell(
+                f"{name}: the workers send no new requests; those in flight may finish. "
+                "Send it again to exit at once."
+            )
+            for pid in self.worker_pids:
+                with contextlib.suppress(ProcessLookupError, PermissionError):
+                    os.kill(pid, signal.SIGTERM)
+            return
+        _tell(f"{name} again: exiting at once.")
+        for pid in (*self.worker_pids, *self.child_pids):
+            _kill_if_our_child(pid)
+        os._exit(EXIT_INTERRUPTED)
+
+
+@contextlib.contextmanager
+def forwarded_stop(child_pids: tuple[int, ...] = (), *, enabled: bool = True) -> Iterator[ForwardedStop]:
+    """Install a ForwardedStop for the block (main thread only); the old handlers come back after."""
+    guard = ForwardedStop(child_pids)
+    saved: dict[signal.Signals, Any] = {}
+    if enabled:
+        for signum in SIGNALS:
+            try:
+                saved[signum] = signal.signal(signum, guard._on_signal)
+            except ValueError:  # not the main thread
+                break
+    try:
+        yield guard
+    finally:
+        for signum, handler in saved.items():
+            signal.signal(signum, handler)
 
 
 @contextlib.contextmanager

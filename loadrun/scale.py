@@ -25,6 +25,7 @@ from typing import Any
 
 from loadrun.errors import LoadrunError, UsageError
 from loadrun.history import record_run
+from loadrun.interrupt import ForwardedStop, forwarded_stop
 from loadrun.runner import (
     MeasureSettings,
     RunResult,
@@ -95,11 +96,14 @@ def measure_scaled(
         deadline = settings.time_limit_s + settings.stop_grace_s + SETUP_ALLOWANCE_S
         extra = CALIBRATION_LEAD_S if settings.wants_calibration() else 0.0
         started_at = time.strftime("%Y-%m-%dT%H:%M:%S%z")
+        children = (int(mock_info["pid"]),) if mock_info else ()
+        stop: ForwardedStop | None = None
         if cluster is None:
             from loadrun.worker_processes import run_on_processes
 
             lead = START_LEAD_S["processes"] + extra
-            results, start_at = run_on_processes(specs, deadline, lead, on_started=on_started)
+            with forwarded_stop(children, enabled=settings.handle_signals) as stop:
+                results, start_at = run_on_processes(specs, deadline, lead, on_started=on_started, stop=stop)
         else:
             from loadrun.cluster import run_on_dask
 
@@ -136,6 +140,9 @@ def measure_scaled(
             for window in summary["windows"]:
                 window["ttft_p50_ms"], window["e2e_p50_ms"] = medians.get(window["second"], (None, None))
         summary["workers"] = section
+        if stop is not None and stop.signal_name is not None:
+            summary["interrupted"] = True
+            summary["interrupt"] = {"signal": stop.signal_name, "grace_s": settings.stop_grace_s}
         history_id = None
         if folder is not None:
             folder.write_json(CONFIG_FILE, config)

@@ -11,6 +11,7 @@ Every process is stopped by its PID on the way out.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import multiprocessing
 import multiprocessing.connection
 import os
@@ -23,6 +24,7 @@ from multiprocessing.connection import Connection
 from multiprocessing.process import BaseProcess
 
 from loadrun.errors import LoadrunError
+from loadrun.interrupt import ForwardedStop
 from loadrun.shard_worker import ShardResult, run_shard
 from loadrun.shards import ShardSpec
 
@@ -34,8 +36,11 @@ _READY = "ready"
 
 
 def _worker_main(spec: ShardSpec, channel: Connection, coordinator_host: str) -> None:
-    # Ctrl-C reaches the whole process group; the coordinator decides what stops (by PID).
+    # A session of its own: a terminal's Ctrl-C reaches the coordinator alone, which passes
+    # it on as SIGTERM (by PID); the shard then stops as a lone run does, with its grace.
+    os.setsid()
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    spec = dataclasses.replace(spec, settings=dataclasses.replace(spec.settings, handle_signals=True))
     channel.send(_READY)
     start_at = channel.recv()
     threading.Thread(target=_stop_with_coordinator, args=(channel,), daemon=True).start()
@@ -59,12 +64,14 @@ def run_on_processes(
     lead_s: float,
     *,
     on_started: Callable[[list[int]], None] | None = None,
+    stop: ForwardedStop | None = None,
 ) -> tuple[list[ShardResult], float]:
     """Run each shard in its own process; returns the results and the agreed start instant.
 
     The start is ``lead_s`` after the last worker is ready (time for the instant to reach
     them all and for their set-up). ``deadline_s`` bounds the run after the start; a worker
-    still running then is stopped and reported. ``on_started`` sees the worker PIDs once all are ready.
+    still running then is stopped and reported. ``on_started`` sees the worker PIDs once all are ready;
+    ``stop`` (when given) learns them too, to pass a Ctrl-C on.
     """
     context = multiprocessing.get_context("spawn")
     host = socket.gethostname()
@@ -86,6 +93,8 @@ def run_on_processes(
         for spec, channel in zip(specs, channels, strict=True):
             if spec.index not in results:
                 channel.send(start_at)
+        if stop is not None:
+            stop.worker_pids = tuple(process.pid for process in processes if process.pid)
         if on_started is not None:
             on_started([process.pid or 0 for process in processes])
         _collect(specs, processes, channels, results, start_at + deadline_s)

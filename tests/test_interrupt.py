@@ -272,3 +272,30 @@ def test_multi_target_runs_stop_the_same_way(
     assert data["cancelled_in_flight"] == 0
     rows = complete_lines(folder / "records.jsonl")
     assert rows and all(row["outcome"] == "ok" for row in rows)
+
+
+def test_a_run_split_across_workers_stops_the_same_way(tmp_path: Path) -> None:
+    """Ctrl-C reaches the coordinator (the terminal's process group); it passes the stop on
+    to its worker processes, each finishes what is in flight, and the merged summary is
+    written marked interrupted."""
+    process = start_run(
+        tmp_path, "--workers", "2", "-c", "4", "-d", "60", "--output-tokens", "20", "--stop-grace", "20"
+    )
+    deadline = time.monotonic() + 60
+    while not any(path.stat().st_size for path in (tmp_path / "out").glob("*/workers/*/*/records.jsonl")):
+        assert process.poll() is None, process.communicate()
+        assert time.monotonic() < deadline, "the workers did not start"
+        time.sleep(0.05)
+    time.sleep(1.0)
+    os.killpg(process.pid, signal.SIGINT)
+    code, _stdout, stderr, waited = finish(process, 40)
+    assert code == EXIT_INTERRUPTED, stderr
+    assert "Traceback" not in stderr and "Interrupted by SIGINT" in stderr
+    assert waited < 10
+    folder = next((tmp_path / "out").glob("*/summary.json")).parent
+    summary = json.loads((folder / "summary.json").read_text())
+    assert summary["interrupted"] is True and summary["interrupt"]["signal"] == "SIGINT"
+    assert summary["cancelled_in_flight"] == 0 and summary["workers"]["count"] == 2
+    rows = [row for path in folder.glob("workers/*/*/records.jsonl") for row in complete_lines(path)]
+    assert len(rows) == summary["sent"] and all(row["outcome"] == "ok" for row in rows)
+    assert_gone(mock_pid(folder))
