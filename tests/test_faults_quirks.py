@@ -101,7 +101,9 @@ def test_quirks_that_keep_one_token_per_chunk(
     for row in rows_of(result):
         assert row["output_tokens"] == OUTPUT_TOKENS and row["token_source"] == source
         assert len(row["chunk_offsets_us"]) == OUTPUT_TOKENS
-    assert summary["latency"]["ttft"]["mean_ms"] == pytest.approx(expected_ttft_ms(), rel=0.10)
+    # The median of the requests' TTFT: one late wake-up among six moves the mean by a
+    # sixth of it, but not the median (alone, every request has the same closed-form TTFT).
+    assert summary["latency"]["ttft"]["p50_ms"] == pytest.approx(expected_ttft_ms(), rel=0.10)
 
 
 @pytest.mark.parametrize("per_chunk", [2, 4])
@@ -115,8 +117,8 @@ def test_several_tokens_per_chunk_count_by_usage_not_chunks(
         assert row["output_tokens"] == OUTPUT_TOKENS and len(row["chunk_offsets_us"]) == chunks
     summary = result.summary
     # The first chunk leaves after per_chunk steps; TPOT still divides by tokens, not chunks.
-    assert summary["latency"]["ttft"]["mean_ms"] == pytest.approx(expected_ttft_ms(per_chunk - 1), rel=0.10)
-    assert summary["latency"]["tpot"]["mean_ms"] == pytest.approx(
+    assert summary["latency"]["ttft"]["p50_ms"] == pytest.approx(expected_ttft_ms(per_chunk - 1), rel=0.10)
+    assert summary["latency"]["tpot"]["p50_ms"] == pytest.approx(
         step_s() * 1000 * (OUTPUT_TOKENS - per_chunk) / (OUTPUT_TOKENS - 1), rel=0.10
     )
 
@@ -136,7 +138,7 @@ def test_several_events_in_one_write(mock: RunningMock, tmp_path: Path) -> None:
         assert len(offsets) == OUTPUT_TOKENS  # one event per token, three per write
         for group in range(0, OUTPUT_TOKENS, 3):
             assert offsets[group + 2] - offsets[group] < 1000  # same write, same arrival
-    assert result.summary["latency"]["ttft"]["mean_ms"] == pytest.approx(expected_ttft_ms(2), rel=0.10)
+    assert result.summary["latency"]["ttft"]["p50_ms"] == pytest.approx(expected_ttft_ms(2), rel=0.10)
 
 
 def test_one_request_at_a_time_makes_ttft_grow_with_the_queue(tmp_path: Path) -> None:
