@@ -6,8 +6,9 @@ import functools
 import re
 import signal
 import sys
+from collections.abc import Callable, Iterable
 from pathlib import Path
-from typing import Annotated, Any, NoReturn
+from typing import TYPE_CHECKING, Annotated, Any, NoReturn
 
 import typer
 
@@ -44,6 +45,9 @@ from loadrun.scale import measure_scaled
 from loadrun.slo import Slo
 from loadrun.target import Target
 from loadrun.whole_output import write_whole
+
+if TYPE_CHECKING:
+    from loadrun.targets import TargetSpec
 
 app = typer.Typer(
     add_completion=False,
@@ -614,9 +618,7 @@ def compare_command(
         if not typer.confirm("Send this load?", default=False, err=True):
             raise UsageError("not confirmed; nothing was sent")
         settings = dataclasses.replace(settings, confirmed=True)
-    mocks = [spec.name for spec in settings.targets if spec.is_mock]
-    if mocks:
-        say(f"Starting the bundled mock server for {', '.join(mocks)} on loopback ports.")
+    _say_mocks(settings.targets)
 
     def progress(done: RoundDone) -> None:
         requests = done.summary["requests"]
@@ -689,21 +691,14 @@ def route_command(
     from loadrun.routing import RouteSettings, load_routed_profile, run_routed
 
     routed = load_routed_profile(profile_path, targets)
-    mocks = [spec.name for spec in routed.routing.specs() if spec.is_mock]
-    if mocks:
-        say(f"Starting the bundled mock server for {', '.join(mocks)} on loopback ports.")
+    _say_mocks(routed.routing.specs())
     overrides = _level_overrides(concurrency, rate, requests, duration, warmup, time_limit)
     result = run_routed(
         RouteSettings(
             routed, overrides, out_dir=out, confirmed=yes, handle_signals=True, frontier_metric=metric
         )
     )
-    if json_output:
-        write_whole(jsonfast.dumps(result.data).decode() + "\n")
-    else:
-        render_routed(result.data)
-    say(f"run folder {result.folder}")
-    _exit_if_interrupted(result.data)
+    _show_run(result.data, result.folder, json_output, render_routed)
 
 
 @app.command("pipeline")
@@ -728,18 +723,11 @@ def pipeline_command(
     from loadrun.report.terminal import render_pipeline
 
     pipeline = load_pipeline_profile(profile_path, targets)
-    mocks = [spec.name for spec in pipeline.specs() if spec.is_mock]
-    if mocks:
-        say(f"Starting the bundled mock server for {', '.join(mocks)} on loopback ports.")
+    _say_mocks(pipeline.specs())
     overrides = _level_overrides(concurrency, rate, requests, duration, warmup, time_limit)
     settings = PipelineSettings(pipeline, overrides, out_dir=out, confirmed=yes, handle_signals=True)
     result = run_pipeline(settings)
-    if json_output:
-        write_whole(jsonfast.dumps(result.data).decode() + "\n")
-    else:
-        render_pipeline(result.data)
-    say(f"run folder {result.folder}")
-    _exit_if_interrupted(result.data)
+    _show_run(result.data, result.folder, json_output, render_pipeline)
 
 
 @app.command("frontier")
@@ -1048,6 +1036,24 @@ def _replace_confirmed(settings: MeasureSettings) -> MeasureSettings:
 def _fail(kind: str, message: str, code: int) -> NoReturn:
     console(stderr=True).print(f"{kind}: {_one_line(message)}", markup=False, highlight=False)
     raise SystemExit(code)
+
+
+def _say_mocks(specs: Iterable[TargetSpec]) -> None:
+    mocks = [spec.name for spec in specs if spec.is_mock]
+    if mocks:
+        say(f"Starting the bundled mock server for {', '.join(mocks)} on loopback ports.")
+
+
+def _show_run(
+    data: dict[str, Any], folder: Path | None, json_output: bool, render: Callable[[dict[str, Any]], None]
+) -> None:
+    """A multi-target run's result: JSON or the terminal view, its folder, exit 130 if stopped."""
+    if json_output:
+        write_whole(jsonfast.dumps(data).decode() + "\n")
+    else:
+        render(data)
+    say(f"run folder {folder}")
+    _exit_if_interrupted(data)
 
 
 def _exit_if_interrupted(summary: dict[str, Any]) -> None:

@@ -22,7 +22,7 @@ import os
 import signal
 import sys
 from collections.abc import Iterator
-from typing import Any
+from typing import Any, NoReturn
 
 import anyio
 
@@ -68,10 +68,7 @@ class SignalStop:
             )
             self.stop.set()
             return
-        _tell(f"{signal.Signals(signum).name} again: exiting at once.")
-        for pid in self.child_pids:
-            _kill_if_our_child(pid)
-        os._exit(EXIT_INTERRUPTED)
+        _exit_at_once(signal.Signals(signum).name, self.child_pids)
 
     def _on_late_signal(self, signum: int, _frame: object) -> None:
         self._on_signal(signal.Signals(signum))
@@ -100,10 +97,7 @@ class ForwardedStop:
                 with contextlib.suppress(ProcessLookupError, PermissionError):
                     os.kill(pid, signal.SIGTERM)
             return
-        _tell(f"{name} again: exiting at once.")
-        for pid in (*self.worker_pids, *self.child_pids):
-            _kill_if_our_child(pid)
-        os._exit(EXIT_INTERRUPTED)
+        _exit_at_once(name, (*self.worker_pids, *self.child_pids))
 
 
 @contextlib.contextmanager
@@ -136,6 +130,13 @@ def signals_stop(
         yield guard
     finally:
         guard.remove()
+
+
+def _exit_at_once(signal_name: str, child_pids: tuple[int, ...]) -> NoReturn:
+    _tell(f"{signal_name} again: exiting at once.")
+    for pid in child_pids:
+        _kill_if_our_child(pid)
+    os._exit(EXIT_INTERRUPTED)
 
 
 def _kill_if_our_child(pid: int) -> None:

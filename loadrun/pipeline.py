@@ -58,7 +58,7 @@ from loadrun._version import __version__
 from loadrun.answers import Answer, collecting_answer
 from loadrun.errors import ProfileError
 from loadrun.interrupt import signals_stop
-from loadrun.profile import Profile, RequestSpec, profile_from_dict
+from loadrun.profile import CLASS_KEYS, Profile, RequestSpec, profile_from_dict
 from loadrun.protocol import ChatRequest
 from loadrun.record import Record
 from loadrun.recorder import Recorder
@@ -100,16 +100,8 @@ STAGE_RECORDS_FILE = "stage_records.jsonl"
 OTHERWISE = "otherwise"
 MAX_STAGES = 32
 _STAGE_KEYS = {"name", "target", "input_from", "routes", "otherwise", "next"}
-_CLASS_KEYS = {
-    "system_prompt",
-    "input_tokens",
-    "output_tokens",
-    "stream",
-    "sampling",
-    "prompts_file",
-    "shared_prefix",
-    "check",
-}
+_CLASS_KEYS = CLASS_KEYS - {"session"}
+"""A stage's request class: a profile's class keys, without sessions (a stage is one call)."""
 
 
 def route_label(text: str) -> str:

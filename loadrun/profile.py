@@ -277,7 +277,7 @@ def load_profile(path: str | Path) -> Profile:
 
 
 _TOP_KEYS = {"name", "description", "seed", "calibrate_input", "request", "classes", "load"}
-_CLASS_KEYS = {
+CLASS_KEYS = {
     "system_prompt",
     "input_tokens",
     "output_tokens",
@@ -288,6 +288,7 @@ _CLASS_KEYS = {
     "session",
     "check",
 }
+"""The keys of a request class (``[request]`` or one of ``[[classes]]``)."""
 _LOAD_KEYS = {
     "arrival",
     "concurrency",
@@ -590,7 +591,7 @@ class _Reader:
         if not isinstance(raw, dict):
             self.fail(path, "must be a table")
         prefix = path + "."
-        allowed = _CLASS_KEYS | ({"name", "weight"} if index is not None else set())
+        allowed = CLASS_KEYS | ({"name", "weight"} if index is not None else set())
         self.only(raw, prefix, allowed)
         name = self.string(raw, "name", prefix, f"class-{index + 1}" if index is not None else "default")
         if not name.strip():
