@@ -207,6 +207,10 @@ def measure_command(
         calibrate_input=calibrate_input,
     )
     settings.check()
+    if cluster is not None:
+        from loadrun.cluster import check_address
+
+        check_address(cluster)
     if target is not None and not target.is_loopback and not yes:
         _confirm(target, settings, _token_prices(price_input, price_output))
         settings = _replace_confirmed(settings)

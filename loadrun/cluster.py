@@ -20,7 +20,7 @@ from loadrun.errors import UsageError
 from loadrun.shard_worker import ShardResult, run_shard
 from loadrun.shards import ShardSpec
 
-__all__ = ["cluster_size", "run_on_dask"]
+__all__ = ["check_address", "cluster_size", "run_on_dask"]
 
 _POLL_S = 0.05
 """How often the coordinator looks at its futures (it has nothing else to do)."""
@@ -35,11 +35,53 @@ def _warm() -> str:
     return socket.gethostname()
 
 
+_SOCKET_SCHEMES = ("tcp", "tls", "ws", "wss")
+_DEFAULT_SCHEDULER_PORT = 8786
+
+
+def check_address(address: str) -> tuple[str, int] | None:
+    """Refuse, in one line, an address Dask's client cannot use; (host, port) for the schemes
+    that run over a socket, None for the others (ucx)."""
+    from distributed.comm.addressing import parse_address, parse_host_port
+    from distributed.comm.registry import get_backend
+
+    refusal = f"{address!r} is not a Dask scheduler address (tcp://host:8786)"
+    try:
+        scheme, location = parse_address(address, strict=False)
+        get_backend(scheme)
+    except ValueError as exc:
+        raise UsageError(f"{refusal}: {exc}") from exc
+    if scheme == "inproc":
+        raise UsageError(f"{address!r} names a scheduler inside another process: give tcp://host:port")
+    if scheme not in _SOCKET_SCHEMES:
+        return None
+    try:
+        host, port = parse_host_port(location, _DEFAULT_SCHEDULER_PORT)
+    except ValueError as exc:
+        raise UsageError(f"{refusal}: {exc}") from exc
+    if not host or not 0 < int(port) < 65536:
+        raise UsageError(f"{refusal}: no host or a bad port")
+    return host, int(port)
+
+
+def _probe(address: str, connect_timeout_s: float) -> None:
+    """A plain socket connection first: a Client that fails to connect leaves a background loop
+    that stalls the process for 20 s on exit and breaks the next Client in it."""
+    endpoint = check_address(address)
+    if endpoint is None:
+        return
+    try:
+        socket.create_connection(endpoint, timeout=connect_timeout_s).close()
+    except (OSError, UnicodeError) as exc:
+        raise UsageError(f"cannot reach a Dask scheduler at {address}: {exc}") from exc
+
+
 def _connect(address: str, connect_timeout_s: float) -> Any:
     try:
         from distributed import Client
     except ImportError as exc:  # pragma: no cover - a dependency of loadrun
         raise UsageError(f"--cluster needs Dask's distributed package: {exc}") from exc
+    _probe(address, connect_timeout_s)
     try:
         # Through Any: whether Client's signature is typed differs between Dask releases.
         connect: Any = Client

@@ -244,18 +244,24 @@ def test_a_remote_target_needs_confirmation(tmp_path: Path) -> None:
 def test_the_rate_axis_searches_open_loop_arrivals(tmp_path: Path) -> None:
     """Poisson arrivals at growing rates; capacity in requests/s offered, with the requests in
     flight there by Little's law (L = lambda W, Little 1961)."""
+    # A slow engine, so that the search stays at rates a 2-core machine sends without strain:
+    # a step costs 20 ms + 2 ms per running sequence, so TPOT reaches 40 ms at about 10
+    # sequences (about 35 requests/s) and the engine's ceiling is 1 / (7 steps x 2 ms) = 71/s.
+    # (A faster engine sent the search to 320/s, where the generator, not the engine, saturated.)
     engine = tmp_path / "rate.toml"
-    engine.write_text('model = "mock-rate"\nstep_base_ms = 5.0\ndecode_per_seq_ms = 0.5\nmax_running = 512\n')
+    engine.write_text(
+        'model = "mock-rate"\nstep_base_ms = 20.0\ndecode_per_seq_ms = 2.0\nmax_running = 512\n'
+    )
     result = find_capacity(
-        quick_settings(tmp_path, str(engine), axis="rate", start_load=20.0, slos=(parse_slo("tpot:p90=20"),))
+        quick_settings(tmp_path, str(engine), axis="rate", start_load=10.0, slos=(parse_slo("tpot:p90=40"),))
     )
     data = result.data
     assert data["axis"] == "rate"
     assert all(step["concurrency"] is None and step["rate_per_s"] == step["load"] for step in data["steps"])
     capacity = data["capacity"]
-    assert capacity["load"] is not None and capacity["load"] > 20.0
+    assert capacity["load"] is not None and 10.0 < capacity["load"] < 71.0
     if capacity["found"]:
-        assert capacity["limited_by"] == "tpot p90 <= 20 ms"
+        assert capacity["limited_by"] == "tpot p90 <= 40 ms"
         # In flight = throughput x mean latency; latencies stay well under a second here.
         assert 0 < capacity["concurrency"] < capacity["load"]
     assert data["advice"]["scale_out_signal"] == "requests per second per replica"

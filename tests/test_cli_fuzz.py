@@ -52,6 +52,12 @@ def accept_measure(measure_settings: MeasureSettings, *args: Any, **kwargs: Any)
     raise Accepted
 
 
+def accept_scaled(measure_settings: MeasureSettings, workers: int | None, cluster: str | None) -> Any:
+    """Split runs start processes or reach a cluster: validate, then stop (the address itself
+    was checked before this; tests/test_workers_dask.py connects for real)."""
+    accept_measure(measure_settings)
+
+
 def accept(*args: Any, **kwargs: Any) -> Any:
     raise Accepted
 
@@ -64,6 +70,7 @@ def fuzz_dir() -> Iterator[Path]:
         patch.chdir(folder)
         stubs = [
             ("loadrun.cli", "measure", accept_measure),
+            ("loadrun.cli", "measure_scaled", accept_scaled),
             ("loadrun.gate", "gate_measure", accept_measure),
             ("loadrun.gate", "gate_folder", accept),
             ("loadrun.compare", "compare", accept),

@@ -226,8 +226,10 @@ def test_open_loop_poisson_against_mmc_matches_erlang_c(
     gaps_s = [(later - earlier) / 1e9 for earlier, later in itertools.pairwise(sends)]
     faithful = stats.kstest(gaps_s, "expon", args=(0, 1 / lam))
     arrivals = summary["arrivals"]
-    print(f"\nsends: KS p {faithful.pvalue:.3f}; send lag p50 {arrivals['send_lag_p50_ms']} ms, "
-          f"p99 {arrivals['send_lag_p99_ms']} ms, max {arrivals['send_lag_max_ms']} ms")
+    print(
+        f"\nsends: KS p {faithful.pvalue:.3f}; send lag p50 {arrivals['send_lag_p50_ms']} ms, "
+        f"p99 {arrivals['send_lag_p99_ms']} ms, max {arrivals['send_lag_max_ms']} ms"
+    )
     assert faithful.pvalue > 0.01, (faithful, arrivals)
     records.sort(key=lambda record: record.send_ns)
     ends = sorted(record.end_ns for record in records)

@@ -28,7 +28,7 @@ from loadrun.target import Target
 from loadrun.timeouts import Timeouts
 from loadrun.transports import FastTransport, HttpxTransport, Transport
 
-pytestmark = pytest.mark.anyio
+pytestmark = [pytest.mark.anyio, pytest.mark.usefixtures("gc_paused")]
 
 REQUEST = ChatRequest(messages=({"role": "user", "content": "is the ferry on time"},), max_tokens=3)
 

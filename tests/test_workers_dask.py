@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import os
 import signal
+import socket
+import subprocess
+import sys
 import threading
 from collections.abc import Iterator
 from dataclasses import replace
@@ -14,6 +17,7 @@ import distributed
 import orjson
 import pytest
 
+from loadrun.cluster import check_address, cluster_size
 from loadrun.errors import UsageError
 from loadrun.profile import LoadSpec, Profile, RequestSpec
 from loadrun.runner import MeasureSettings
@@ -99,3 +103,43 @@ def test_a_dask_worker_that_leaves_is_reported(cluster: Any, tmp_path: Path) -> 
 def test_more_shards_than_dask_workers_are_refused(cluster: Any, tmp_path: Path) -> None:
     with pytest.raises(UsageError, match="3 shards need as many Dask workers"):
         measure_scaled(_settings(tmp_path, concurrency=6), 3, cluster.scheduler_address)
+
+
+def _closed_loopback_port() -> int:
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+@pytest.mark.parametrize(
+    "address", ["http://127.0.0.1:9/v1", "tcp://", "inproc://x", "tcp://127.0.0.1:99999"]
+)
+def test_an_address_dask_cannot_use_is_refused_in_one_line(address: str) -> None:
+    with pytest.raises(UsageError, match=r"is not a Dask scheduler address|scheduler inside another process"):
+        check_address(address)
+
+
+def test_bad_and_unreachable_schedulers_are_refused_again_and_again_in_this_process() -> None:
+    # A Client refused for a bad address left its loop behind: the next Client in the process
+    # then tripped an internal assertion instead of saying the scheduler is unreachable.
+    with pytest.raises(UsageError, match="is not a Dask scheduler address"):
+        cluster_size("http://127.0.0.1:9/v1", connect_timeout_s=2.0)
+    address = f"tcp://127.0.0.1:{_closed_loopback_port()}"
+    for _ in range(2):
+        with pytest.raises(UsageError, match="cannot reach a Dask scheduler"):
+            cluster_size(address, connect_timeout_s=2.0)
+
+
+@pytest.mark.parametrize("address", ["http://127.0.0.1:9/v1", "closed-port"])
+def test_the_command_line_refuses_a_bad_cluster_in_one_line(address: str) -> None:
+    if address == "closed-port":
+        address = f"tcp://127.0.0.1:{_closed_loopback_port()}"
+    done = subprocess.run(
+        [sys.executable, "-m", "loadrun", "measure", "--cluster", address, "--requests", "4", "--yes"],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert done.returncode == 2, done.stderr
+    assert "Traceback" not in done.stderr and "Exception ignored" not in done.stderr, done.stderr
+    assert done.stderr.strip().splitlines()[-1].startswith("UsageError: "), done.stderr
