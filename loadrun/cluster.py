@@ -17,6 +17,7 @@ from collections.abc import Sequence
 from typing import Any
 
 from loadrun.errors import UsageError
+from loadrun.interrupt import ForwardedStop
 from loadrun.shard_worker import ShardResult, run_shard
 from loadrun.shards import ShardSpec
 
@@ -102,9 +103,13 @@ def run_on_dask(
     deadline_s: float,
     lead_s: float,
     connect_timeout_s: float = 10.0,
+    stop: ForwardedStop | None = None,
 ) -> tuple[list[ShardResult], float]:
     """Run each shard on its own Dask worker; returns the results and the agreed start instant
-    (``lead_s`` after the submission: the scheduler must hand every task to its worker)."""
+    (``lead_s`` after the submission: the scheduler must hand every task to its worker).
+    Once ``stop`` has seen a signal, a Dask Event tells every shard to stop sending."""
+    from distributed import Event
+
     with _connect(address, connect_timeout_s) as client:
         workers = sorted(client.scheduler_info(n_workers=-1)["workers"])
         if len(workers) < len(specs):
@@ -115,12 +120,14 @@ def run_on_dask(
         start_at = time.time() + lead_s
         host = socket.gethostname()
         run_id = uuid.uuid4().hex[:8]
+        stop_name = f"loadrun-{run_id}-stop"
         futures = {
             spec.index: client.submit(
                 run_shard,
                 spec,
                 start_at,
                 host,
+                stop_name,
                 key=f"loadrun-{run_id}-{spec.name}",
                 workers=[worker],
                 allow_other_workers=False,
@@ -130,8 +137,26 @@ def run_on_dask(
             for spec, worker in zip(specs, workers, strict=False)
         }
         assigned = dict(zip((spec.index for spec in specs), workers, strict=False))
-        results = _collect(client, specs, futures, assigned, start_at + deadline_s)
+        untyped: Any = Event  # distributed's Event is not typed
+        stop_flag = untyped(stop_name, client=client)
+        results = _collect(client, specs, futures, assigned, start_at + deadline_s, _Relay(stop, stop_flag))
         return [results[spec.index] for spec in specs], start_at
+
+
+class _Relay:
+    """Passes a signal the coordinator caught on to the shards, once. The signal handler only
+    notes it; the Dask call is made here, from the polling loop, never inside the handler."""
+
+    def __init__(self, stop: ForwardedStop | None, stop_flag: Any) -> None:
+        self.stop = stop
+        self.stop_flag = stop_flag
+        self.relayed = False
+
+    def __call__(self) -> None:
+        if self.relayed or self.stop is None or self.stop.signal_name is None:
+            return
+        self.stop_flag.set()
+        self.relayed = True
 
 
 def _collect(
@@ -140,6 +165,7 @@ def _collect(
     futures: dict[int, Any],
     assigned: dict[int, str],
     give_up_wall: float,
+    relay: _Relay,
 ) -> dict[int, ShardResult]:
     results: dict[int, ShardResult] = {}
     names = {spec.index: spec.name for spec in specs}
@@ -147,6 +173,7 @@ def _collect(
         pending = [future for index, future in futures.items() if index not in results]
         polls = 0
         while polls * _POLL_S < _CHECK_WORKERS_S and all(not future.done() for future in pending):
+            relay()
             time.sleep(_POLL_S)
             polls += 1
         alive = set(client.scheduler_info(n_workers=-1)["workers"])

@@ -91,7 +91,8 @@ def measure_scaled(
         profile = settings.effective_profile()
         label = f"{profile.name}-{_level_label(plan)}-x{workers}"
         folder = RunFolder.create(settings.out_dir, label) if settings.out_dir is not None else None
-        shard_root = str(folder.path / "workers") if folder is not None else None
+        # Absolute: a Dask worker on this machine runs in a working directory of its own.
+        shard_root = str(folder.path.resolve() / "workers") if folder is not None else None
         specs = split_settings(replace(settings, target=target), workers, shard_root)
         deadline = settings.time_limit_s + settings.stop_grace_s + SETUP_ALLOWANCE_S
         extra = CALIBRATION_LEAD_S if settings.wants_calibration() else 0.0
@@ -108,7 +109,10 @@ def measure_scaled(
             from loadrun.cluster import run_on_dask
 
             lead = START_LEAD_S["dask"] + extra
-            results, start_at = run_on_dask(cluster, specs, deadline, lead, settings.connect_timeout_s)
+            with forwarded_stop(children, enabled=settings.handle_signals) as stop:
+                results, start_at = run_on_dask(
+                    cluster, specs, deadline, lead, settings.connect_timeout_s, stop=stop
+                )
         finished = [result for result in results if result.finished]
         problems = [str(result.error) for result in results if not result.finished]
         if not finished:

@@ -22,7 +22,7 @@ from typing import Any
 import anyio
 
 from loadrun.errors import LoadrunError
-from loadrun.runner import event_loop_options, measure_async
+from loadrun.runner import MeasureSettings, RunResult, event_loop_options, measure_async
 from loadrun.shards import ShardSpec
 from loadrun.store import RECORDS_FILE
 
@@ -47,35 +47,71 @@ class ShardResult:
         return self.summary is not None
 
 
-def run_shard(spec: ShardSpec, start_at_wall: float, coordinator_host: str) -> ShardResult:
-    """Run ``spec`` from ``start_at_wall`` on (blocking; starts its own event loop)."""
+def run_shard(
+    spec: ShardSpec, start_at_wall: float, coordinator_host: str, stop_event: str | None = None
+) -> ShardResult:
+    """Run ``spec`` from ``start_at_wall`` on (blocking; starts its own event loop).
+    ``stop_event``: the name of a Dask Event that, once set, stops the shard the way a signal
+    stops a lone run (a Dask task runs in a worker thread, which no signal reaches)."""
+    stop_flag = None
+    if stop_event is not None:
+        from distributed import Event
+
+        untyped: Any = Event  # distributed's Event is not typed
+        stop_flag = untyped(stop_event)  # made in the task's thread, where the worker's client is known
     return anyio.run(
         _run_shard,
         spec,
         start_at_wall,
         coordinator_host,
+        stop_flag,
         backend="asyncio",
         backend_options=event_loop_options(),
     )
 
 
-async def _run_shard(spec: ShardSpec, start_at_wall: float, coordinator_host: str) -> ShardResult:
+async def _run_shard(
+    spec: ShardSpec, start_at_wall: float, coordinator_host: str, stop_flag: Any = None
+) -> ShardResult:
     host = socket.gethostname()
     result = ShardResult(index=spec.index, host=host, pid=os.getpid())
     due = start_at_wall + spec.phase_s
     settings = replace(spec.settings, start_at_wall=due)
     if spec.out_dir is not None:
         settings = replace(settings, out_dir=_writable(spec.out_dir, spec.index))
-    try:
-        run = await measure_async(settings)
-    except LoadrunError as exc:
-        result.error = f"{type(exc).__name__}: {exc}"
+    stop = anyio.Event()
+    async with anyio.create_task_group() as group:
+        if stop_flag is not None:
+            group.start_soon(_watch, stop_flag, stop)
+        run = await _measure_or_error(settings, stop)
+        group.cancel_scope.cancel()
+    if isinstance(run, str):
+        result.error = run
         return result
     result.summary = run.summary
     result.folder = str(run.folder) if run.folder is not None else None
     if run.folder is not None and host != coordinator_host:
         result.records = (run.folder / RECORDS_FILE).read_bytes()
     return result
+
+
+async def _measure_or_error(settings: MeasureSettings, stop: anyio.Event) -> RunResult | str:
+    """The run, or why it failed (one line)."""
+    try:
+        return await measure_async(settings, stop=stop)
+    except LoadrunError as exc:
+        return f"{type(exc).__name__}: {exc}"
+
+
+_WATCH_S = 0.25
+"""How long each look at the coordinator's stop flag waits (a stop takes up to this long)."""
+
+
+async def _watch(stop_flag: Any, stop: anyio.Event) -> None:
+    """Set ``stop`` once the coordinator sets its Dask Event."""
+    while not await anyio.to_thread.run_sync(stop_flag.wait, _WATCH_S, abandon_on_cancel=True):
+        pass
+    stop.set()
 
 
 def _writable(folder: str, index: int) -> Path:
