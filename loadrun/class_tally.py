@@ -9,6 +9,7 @@ answer beside latency.
 from __future__ import annotations
 
 from collections import Counter
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -16,7 +17,9 @@ from loadrun.record import Outcome, Record
 
 
 @dataclass(slots=True)
-class _Tally:
+class ClassCounts:
+    """The sums behind one class's summary (or, merged, behind the totals)."""
+
     requests: int = 0
     ok: int = 0
     outcomes: Counter[str] = field(default_factory=Counter)
@@ -53,7 +56,7 @@ class _Tally:
             self.relative_error_sum += error
             self.relative_error_max = max(self.relative_error_max, abs(error))
 
-    def merge(self, other: _Tally) -> None:
+    def merge(self, other: ClassCounts) -> None:
         self.requests += other.requests
         self.ok += other.ok
         self.outcomes.update(other.outcomes)
@@ -86,6 +89,30 @@ class _Tally:
             "max_relative_error": self.relative_error_max if samples else None,
         }
 
+    @classmethod
+    def from_summary(cls, summary: Mapping[str, Any]) -> ClassCounts:
+        """The counts rebuilt from their ``summary()`` (sums from means and counts), so that
+        shards' summaries can be merged."""
+        counts = cls()
+        counts.requests = int(summary["requests"])
+        counts.ok = int(summary["ok"])
+        counts.outcomes.update(summary["by_outcome"])
+        counts.output_tokens = round((summary["output_tokens_mean"] or 0.0) * counts.ok)
+        counts.turns = int(summary["turns_seen"])
+        compliance = summary["compliance"]
+        counts.checked = int(compliance["checked"])
+        counts.compliant = int(compliance["compliant"])
+        counts.check_notes.update(compliance["top_failures"])
+        lengths = summary["input_lengths"]
+        samples = int(lengths["samples"])
+        counts.length_samples = samples
+        if samples:
+            counts.requested_tokens = round(lengths["requested_mean"] * samples)
+            counts.achieved_tokens = round(lengths["achieved_mean"] * samples)
+            counts.relative_error_sum = lengths["mean_relative_error"] * samples
+            counts.relative_error_max = lengths["max_relative_error"]
+        return counts
+
     def summary(self) -> dict[str, Any]:
         return {
             "requests": self.requests,
@@ -102,23 +129,36 @@ class ClassTally:
     """Counts per request class, over the measured (in-window) requests."""
 
     def __init__(self) -> None:
-        self._by_class: dict[str, _Tally] = {}
+        self._by_class: dict[str, ClassCounts] = {}
 
     def add(self, record: Record) -> None:
         if not record.in_window:
             return
         tally = self._by_class.get(record.request_class)
         if tally is None:
-            tally = self._by_class[record.request_class] = _Tally()
+            tally = self._by_class[record.request_class] = ClassCounts()
         tally.add(record)
 
     def summary(self) -> dict[str, Any]:
         """``classes`` (per class), ``compliance`` and ``input_lengths`` (over all classes)."""
-        total = _Tally()
-        for tally in self._by_class.values():
-            total.merge(tally)
-        return {
-            "classes": {name: self._by_class[name].summary() for name in sorted(self._by_class)},
-            "compliance": total.compliance(),
-            "input_lengths": total.input_lengths(),
-        }
+        return _summary_of(self._by_class)
+
+
+def merge_class_summaries(parts: Sequence[Mapping[str, Any]]) -> dict[str, Any]:
+    """The ``summary()`` of several runs' ``classes`` sections together (a split run's shards)."""
+    by_class: dict[str, ClassCounts] = {}
+    for classes in parts:
+        for name, summary in classes.items():
+            by_class.setdefault(name, ClassCounts()).merge(ClassCounts.from_summary(summary))
+    return _summary_of(by_class)
+
+
+def _summary_of(by_class: Mapping[str, ClassCounts]) -> dict[str, Any]:
+    total = ClassCounts()
+    for counts in by_class.values():
+        total.merge(counts)
+    return {
+        "classes": {name: by_class[name].summary() for name in sorted(by_class)},
+        "compliance": total.compliance(),
+        "input_lengths": total.input_lengths(),
+    }

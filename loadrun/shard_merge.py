@@ -16,7 +16,7 @@ from pathlib import Path
 from statistics import median
 from typing import Any
 
-from loadrun.class_tally import _Tally
+from loadrun.class_tally import merge_class_summaries
 from loadrun.generator_health import assess_generator
 from loadrun.metrics import HistogramSet
 from loadrun.store import read_records
@@ -76,7 +76,7 @@ def merge_summaries(summaries: Sequence[Mapping[str, Any]]) -> dict[str, Any]:
             "by_outcome": dict(sorted(_add_counts(r["by_outcome"] for r in retries).items())),
             "waited_s": round(sum(float(r["waited_s"]) for r in retries), 6),
         }
-    merged.update(_merge_classes([s.get("classes") or {} for s in summaries]))
+    merged.update(merge_class_summaries([s.get("classes") or {} for s in summaries]))
     return merged
 
 
@@ -201,42 +201,3 @@ def _merge_arrivals(parts: Sequence[Mapping[str, Any]]) -> dict[str, Any]:
     notes = [f"worker w{index}: {p['note']}" for index, p in enumerate(parts) if p.get("note")]
     merged["note"] = "; ".join(notes) or None
     return merged
-
-
-def _tally_from(summary: Mapping[str, Any]) -> _Tally:
-    """A class's tally rebuilt from its summary (sums from means and counts)."""
-    tally = _Tally()
-    tally.requests = int(summary["requests"])
-    tally.ok = int(summary["ok"])
-    tally.outcomes.update(summary["by_outcome"])
-    tally.output_tokens = round((summary["output_tokens_mean"] or 0.0) * tally.ok)
-    tally.turns = int(summary["turns_seen"])
-    compliance = summary["compliance"]
-    tally.checked = int(compliance["checked"])
-    tally.compliant = int(compliance["compliant"])
-    tally.check_notes.update(compliance["top_failures"])
-    lengths = summary["input_lengths"]
-    samples = int(lengths["samples"])
-    tally.length_samples = samples
-    if samples:
-        tally.requested_tokens = round(lengths["requested_mean"] * samples)
-        tally.achieved_tokens = round(lengths["achieved_mean"] * samples)
-        tally.relative_error_sum = lengths["mean_relative_error"] * samples
-        tally.relative_error_max = lengths["max_relative_error"]
-    return tally
-
-
-def _merge_classes(parts: Sequence[Mapping[str, Any]]) -> dict[str, Any]:
-    by_class: dict[str, _Tally] = {}
-    for classes in parts:
-        for name, summary in classes.items():
-            tally = by_class.setdefault(name, _Tally())
-            tally.merge(_tally_from(summary))
-    total = _Tally()
-    for tally in by_class.values():
-        total.merge(tally)
-    return {
-        "classes": {name: by_class[name].summary() for name in sorted(by_class)},
-        "compliance": total.compliance(),
-        "input_lengths": total.input_lengths(),
-    }

@@ -20,6 +20,7 @@ from typing import Any
 
 import pytest
 
+from loadrun.class_tally import ClassTally, merge_class_summaries
 from loadrun.driver import ClosedLoopPlan, OpenLoopPlan
 from loadrun.errors import UsageError
 from loadrun.gate import GateSettings, validity_problems
@@ -354,3 +355,40 @@ async def test_the_wait_for_the_agreed_instant_ends_at_it_not_before() -> None:
     await wait_until_wall(instant)
     assert 0 <= time.time() - instant < 0.05  # generous: only "not before" is exact
     await wait_until_wall(instant - 10)  # passed already: returns at once
+
+
+def test_merged_class_counts_equal_one_tally_that_saw_every_record() -> None:
+    """Per-class compliance, verbosity and input lengths, merged from shards' summaries,
+    equal one tally over all the records (sums rebuilt from means: equal to rounding)."""
+    rng = random.Random(7)
+    origin = 10**12
+    shards = [_records(rng, count, origin) for count in (120, 80, 40)]
+    for records in shards:
+        for record in records:
+            record.request_class = rng.choice(["triage", "summary", "extract"])
+            record.requested_input_tokens = rng.choice([30, 32, 40])
+            record.compliant = rng.choice([True, False, None])
+            record.check_note = "not one of the labels" if record.compliant is False else None
+
+    def classes_of(records: list[Record]) -> dict[str, Any]:
+        tally = ClassTally()
+        for record in records:
+            tally.add(record)
+        return tally.summary()
+
+    merged = merge_class_summaries([classes_of(records)["classes"] for records in shards])
+    whole = classes_of([record for records in shards for record in records])
+    assert set(merged["classes"]) == {"triage", "summary", "extract"}
+    assert_close(merged, whole)
+
+
+def assert_close(left: Any, right: Any) -> None:
+    """Equal, floats to 1e-9 relative, all the way down."""
+    if isinstance(left, dict):
+        assert left.keys() == right.keys()
+        for key in left:
+            assert_close(left[key], right[key])
+    elif isinstance(left, float):
+        assert left == pytest.approx(right, rel=1e-9), (left, right)
+    else:
+        assert left == right
