@@ -32,6 +32,7 @@ import anyio.abc
 
 from loadrun.answers import Answer, collecting_answer
 from loadrun.arrivals import OpenArrivals
+from loadrun.collector_hold import holding_old_objects
 from loadrun.errors import UsageError
 from loadrun.metrics import LatencyHistogram
 from loadrun.protocol import ChatRequest
@@ -213,6 +214,7 @@ def _as_conversations(items: Iterator[ChatRequest | Conversation]) -> Iterator[C
         yield item if isinstance(item, Conversation) else Conversation.single(item, number)
 
 
+@holding_old_objects
 async def run_closed_loop(
     plan: ClosedLoopPlan,
     execute: Execute,
@@ -291,6 +293,7 @@ async def run_closed_loop(
     return state
 
 
+@holding_old_objects
 async def run_open_loop(
     plan: OpenLoopPlan,
     execute: Execute,
