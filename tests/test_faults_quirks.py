@@ -144,6 +144,14 @@ def test_several_events_in_one_write(mock: RunningMock, tmp_path: Path) -> None:
 def test_one_request_at_a_time_makes_ttft_grow_with_the_queue(tmp_path: Path) -> None:
     concurrency = 4
     with start_subprocess(ENGINE, extra_args=["--quirk", "one_at_a_time"]) as serial:
+        # One request first, so that the server's first-request costs stay out of the
+        # single-sample comparisons below.
+        warm = httpx.post(
+            serial.base_url + "/chat/completions",
+            json={"model": "mock-itest", "messages": [{"role": "user", "content": "hello"}], "max_tokens": 2},
+            timeout=10,
+        )
+        assert warm.status_code == 200, warm.text
         result = run_with(serial, tmp_path, {"one_at_a_time": True}, concurrency=concurrency)
         stats = httpx.get(serial.url + "/mock/stats", timeout=5).json()
     assert stats["max_running_seen"] == 1
@@ -160,5 +168,7 @@ def test_one_request_at_a_time_makes_ttft_grow_with_the_queue(tmp_path: Path) ->
     queue_ahead = [min(position, concurrency - 1) for position in range(REQUESTS)]
     expected_ms = [(ahead * alone.mean_e2e_s + alone.mean_ttft_s) * 1000 for ahead in queue_ahead]
     measured_ms = sorted((row["first_token_us"] - row["intended_us"]) / 1000 for row in rows_of(result))
+    # One sample per queue position, and positions 220 ms apart: 10 ms (a scheduler hiccup
+    # on a shared 2-core machine; 5.2 ms was seen) still tells every position apart.
     for measured, expected in zip(measured_ms, expected_ms, strict=True):
-        assert measured == pytest.approx(expected, rel=0.10, abs=5.0)
+        assert measured == pytest.approx(expected, rel=0.10, abs=10.0)
