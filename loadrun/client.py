@@ -273,13 +273,9 @@ class ChatClient:
         attempt = 1
         while attempt <= self.retry.max_retries and not self._stopping():
             wait_s = self.retry.wait_s(parse_retry_after(retry_after))
-            if self._stop is not None:
-                with anyio.move_on_after(wait_s):
-                    await self._stop.wait()
-                if self._stop.is_set():
-                    return
-            else:
-                await anyio.sleep(wait_s)
+            await self._wait_at_least(wait_s)
+            if self._stopping():
+                return
             attempt += 1
             record = Record(
                 request_id=first.request_id, intended_ns=perf_counter_ns(), in_window=first.in_window
@@ -292,6 +288,17 @@ class ChatClient:
             self._on_retry(record, attempt, wait_s)
             if record.outcome is not Outcome.RATE_LIMITED:
                 return
+
+    async def _wait_at_least(self, wait_s: float) -> None:
+        """Wait ``wait_s`` (or until a stop), never less: the event loop's timers count whole
+        milliseconds and may fire up to one early, and Retry-After is a minimum."""
+        not_before = perf_counter_ns() + int(wait_s * 1e9)
+        while (left_ns := not_before - perf_counter_ns()) > 0 and not self._stopping():
+            if self._stop is None:
+                await anyio.sleep(left_ns / 1e9)
+                continue
+            with anyio.move_on_after(left_ns / 1e9):
+                await self._stop.wait()
 
     def _stopping(self) -> bool:
         return self._stop is not None and self._stop.is_set()

@@ -138,4 +138,5 @@ async def test_the_first_token_limit_holds_on_the_tls_path(certificate: tuple[Pa
     async with tls_server(certificate, stall_s=2.0) as url:
         record = await send(url, transport, Timeouts(first_token_s=0.3, idle_s=0.3, total_s=5.0))
     assert record.outcome is Outcome.TIMEOUT_FIRST_TOKEN
-    assert 0.3 <= (record.end_ns - record.send_ns) / 1e9 < 0.45
+    # The event loop's timers count whole milliseconds: the limit may end up to 1 ms early.
+    assert 0.3 - 0.001 <= (record.end_ns - record.send_ns) / 1e9 < 0.45
