@@ -32,6 +32,7 @@ from typing import Any
 import numpy as np
 from hdrh.histogram import HdrHistogram
 
+from loadrun.cost import MILLION
 from loadrun.errors import StoreError, UsageError
 from loadrun.metrics import LATENCY_METRICS, HistogramSet, LatencyHistogram
 from loadrun.store import RunFolder
@@ -220,7 +221,7 @@ def routing_frontier(
             cost = blended_cost(first.cost_per_request, second.cost_per_request, share)
             if first.tokens_per_request and second.tokens_per_request:
                 tokens = blended_cost(first.tokens_per_request, second.tokens_per_request, share)
-                per_million = cost / tokens * 1_000_000
+                per_million = cost / tokens * MILLION
         raw.append(
             FrontierPoint(share, {key: value / 1000 for key, value in values.items()}, cost, per_million)
         )

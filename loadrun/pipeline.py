@@ -64,10 +64,9 @@ from loadrun.record import Record
 from loadrun.recorder import Recorder
 from loadrun.routing import read_profile_document, resolve_targets
 from loadrun.runner import ABSORB_EVERY, event_loop_options
-from loadrun.store import CONFIG_FILE, RunFolder
+from loadrun.store import CONFIG_FILE, RecordLines, RunFolder
 from loadrun.target_pool import (
     LevelOverrides,
-    RecordsFile,
     TargetBill,
     blended_bill,
     check_targets,
@@ -520,8 +519,8 @@ async def run_pipeline_async(settings: PipelineSettings, stop: anyio.Event | Non
             async with open_clients(specs, targets, stop) as clients:
                 origin = time.perf_counter_ns()
                 path = folder.path if folder else None
-                run_records = RecordsFile(path, origin)
-                stage_records = RecordsFile(path, origin, STAGE_RECORDS_FILE)
+                run_records = RecordLines(path, origin)
+                stage_records = RecordLines(path, origin, STAGE_RECORDS_FILE)
                 runs = Recorder(origin)
                 tally = _Tally(pipeline.definition, origin, specs)
                 failed_at: Counter[str] = Counter()

@@ -16,11 +16,11 @@ import time
 from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
-from typing import IO, Any
+from typing import Any
 
-from loadrun import jsonfast
-from loadrun.errors import StoreError, UsageError
+from loadrun.errors import UsageError
 from loadrun.record import Outcome, Record
+from loadrun.store import RecordLines
 
 RETRIES_FILE = "retries.jsonl"
 
@@ -67,34 +67,20 @@ def parse_retry_after(value: bytes | str | None, now: float | None = None) -> fl
     return max(0.0, when.timestamp() - (time.time() if now is None else now))
 
 
-class RetryLog:
+class RetryLog(RecordLines):
     """Retries as they finish: one complete, flushed line each in ``retries.jsonl``, and counts."""
 
     def __init__(self, folder: Path | None, origin_ns: int) -> None:
-        self.origin_ns = origin_ns
+        super().__init__(folder, origin_ns, RETRIES_FILE)
         self.by_outcome: Counter[str] = Counter()
         self.sent = 0
         self.waited_s = 0.0
-        self._file: IO[bytes] | None = None
-        if folder is not None:
-            try:
-                self._file = open(folder / RETRIES_FILE, "ab")  # noqa: SIM115 - closed in close()
-            except OSError as exc:
-                raise StoreError(f"cannot open {folder / RETRIES_FILE}: {exc.strerror or exc}") from exc
 
     def add(self, record: Record, attempt: int, waited_s: float) -> None:
         self.sent += 1
         self.waited_s += waited_s
         self.by_outcome[record.outcome.value] += 1
-        if self._file is not None:
-            line = {**record.to_json(self.origin_ns), "attempt": attempt, "waited_s": round(waited_s, 6)}
-            self._file.write(jsonfast.dumps(line) + b"\n")
-            self._file.flush()
-
-    def close(self) -> None:
-        if self._file is not None:
-            self._file.close()
-            self._file = None
+        self.write(record, attempt=attempt, waited_s=round(waited_s, 6))
 
     def summary(self) -> dict[str, Any]:
         return {

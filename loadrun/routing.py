@@ -55,10 +55,9 @@ from loadrun.protocol import ChatRequest
 from loadrun.record import Record
 from loadrun.recorder import Recorder
 from loadrun.runner import ABSORB_EVERY, event_loop_options
-from loadrun.store import CONFIG_FILE, RunFolder
+from loadrun.store import CONFIG_FILE, RecordLines, RunFolder
 from loadrun.target_pool import (
     LevelOverrides,
-    RecordsFile,
     TargetBill,
     blended_bill,
     check_targets,
@@ -349,7 +348,7 @@ async def run_routed_async(settings: RouteSettings, stop: anyio.Event | None = N
                     return await client_of[target_of(record)].execute(request, record)
 
                 origin = time.perf_counter_ns()
-                records = RecordsFile(folder.path if folder else None, origin)
+                records = RecordLines(folder.path if folder else None, origin)
                 blended = Recorder(origin)
                 per_target = {name: Recorder(origin) for name in names}
                 bills = {name: TargetBill() for name in names}

@@ -252,7 +252,7 @@ async def measure_async(
     """Run one load level; ``observe`` sees every finished Record as it arrives (keep it cheap)."""
     plan = settings.check()
     stop = stop or anyio.Event()
-    with _target_for(settings) as (target, mock_info):
+    with target_for(settings) as (target, mock_info):
         if not target.is_loopback and not settings.confirmed:
             raise UsageError(
                 f"{target.base_url} is not on this machine: confirm that you may load it (--yes)"
@@ -273,7 +273,7 @@ async def _run_level(
     signals: SignalStop | None = None,
 ) -> RunResult:
     profile = settings.effective_profile()
-    label = f"{profile.name}-{_level_label(plan)}"
+    label = f"{profile.name}-{level_label(plan)}"
     folder = RunFolder.create(settings.out_dir, label) if settings.out_dir is not None else None
     started_at = time.strftime("%Y-%m-%dT%H:%M:%S%z")
     transport = make_transport(
@@ -285,7 +285,7 @@ async def _run_level(
         "target": target.describe(),
         "embedded_mock": mock_info,
         "profile": profile.describe(),
-        "load": _plan_json(plan),
+        "load": plan_json(plan),
         "context_window": settings.context_window,
         "transport": settings.transport,
         "receive_clock": transport.receive_clock(target.endpoint),
@@ -439,7 +439,8 @@ class _UnreachableBreaker:
 
 
 @contextlib.contextmanager
-def _target_for(settings: MeasureSettings) -> Iterator[tuple[Target, dict[str, Any] | None]]:
+def target_for(settings: MeasureSettings) -> Iterator[tuple[Target, dict[str, Any] | None]]:
+    """The run's target, or (none given) the bundled mock started for it, with its info."""
     if settings.target is not None:
         yield settings.target, None
         return
@@ -479,7 +480,8 @@ async def _check_reachable(target: Target, timeout_s: float) -> None:
         ) from exc
 
 
-def _plan_json(plan: LoadPlan) -> dict[str, Any]:
+def plan_json(plan: LoadPlan) -> dict[str, Any]:
+    """The load level as config.json and the summary state it."""
     if isinstance(plan, ClosedLoopPlan):
         return {
             "mode": "closed_loop",
@@ -502,7 +504,8 @@ def _plan_json(plan: LoadPlan) -> dict[str, Any]:
     }
 
 
-def _level_label(plan: LoadPlan) -> str:
+def level_label(plan: LoadPlan) -> str:
+    """The level in a run folder's name, e.g. c8 or poisson-r20."""
     if isinstance(plan, ClosedLoopPlan):
         return f"c{plan.concurrency}"
     if isinstance(plan.arrivals, TraceArrivals):

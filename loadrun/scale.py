@@ -29,9 +29,9 @@ from loadrun.interrupt import ForwardedStop, forwarded_stop
 from loadrun.runner import (
     MeasureSettings,
     RunResult,
-    _level_label,
-    _plan_json,
-    _target_for,
+    level_label,
+    plan_json,
+    target_for,
 )
 from loadrun.shard_merge import merge_summaries, window_medians
 from loadrun.shard_worker import ShardResult
@@ -83,13 +83,13 @@ def measure_scaled(
         from loadrun.cluster import cluster_size
 
         workers = cluster_size(cluster, settings.connect_timeout_s)
-    with _target_for(settings) as (target, mock_info):
+    with target_for(settings) as (target, mock_info):
         if not target.is_loopback and not settings.confirmed:
             raise UsageError(
                 f"{target.base_url} is not on this machine: confirm that you may load it (--yes)"
             )
         profile = settings.effective_profile()
-        label = f"{profile.name}-{_level_label(plan)}-x{workers}"
+        label = f"{profile.name}-{level_label(plan)}-x{workers}"
         folder = RunFolder.create(settings.out_dir, label) if settings.out_dir is not None else None
         # Absolute: a Dask worker on this machine runs in a working directory of its own.
         shard_root = str(folder.path.resolve() / "workers") if folder is not None else None
@@ -124,7 +124,7 @@ def measure_scaled(
             started_at=started_at,
             embedded_mock=mock_info,
             profile=profile.describe(),
-            load=_plan_json(plan),
+            load=plan_json(plan),
         )
         records = _record_files(specs, results)
         section = _workers_section(specs, results, records, start_at, cluster, problems)

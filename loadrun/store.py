@@ -19,11 +19,37 @@ SUMMARY_FILE = "summary.json"
 CONFIG_FILE = "config.json"
 
 
+class RecordLines:
+    """An append-only JSONL file of Records, each line complete and flushed as it is written
+    (a crash loses no finished request), with labels added to every line if given. No
+    folder: nothing is written."""
+
+    def __init__(self, folder: Path | None, origin_ns: int, name: str = RECORDS_FILE) -> None:
+        self.origin_ns = origin_ns
+        self._handle: IO[bytes] | None = None
+        if folder is not None:
+            try:
+                self._handle = open(folder / name, "ab")  # noqa: SIM115 - closed in close()
+            except OSError as exc:
+                raise StoreError(f"cannot open {folder / name}: {exc.strerror or exc}") from exc
+
+    def write(self, record: Record, **labels: Any) -> None:
+        if self._handle is None:
+            return
+        line = record.to_json(self.origin_ns)
+        self._handle.write(jsonfast.dumps({**line, **labels} if labels else line) + b"\n")
+        self._handle.flush()
+
+    def close(self) -> None:
+        if self._handle is not None:
+            self._handle.close()
+            self._handle = None
+
+
 class RunFolder:
     def __init__(self, path: Path) -> None:
         self.path = path
-        self._records: IO[bytes] | None = None
-        self.origin_ns = 0
+        self._records: RecordLines | None = None
 
     @classmethod
     def create(cls, root: str | Path, label: str) -> RunFolder:
@@ -46,18 +72,12 @@ class RunFolder:
 
     # records ------------------------------------------------------------------------
     def open_records(self, origin_ns: int) -> None:
-        self.origin_ns = origin_ns
-        try:
-            self._records = open(self.path / RECORDS_FILE, "ab")  # noqa: SIM115 - closed in close()
-        except OSError as exc:
-            raise StoreError(f"cannot open {self.path / RECORDS_FILE}: {exc.strerror or exc}") from exc
+        self._records = RecordLines(self.path, origin_ns)
 
     def write_record(self, record: Record) -> None:
         """Append one complete line and flush it, so a crash loses no finished request."""
-        if self._records is None:
-            return
-        self._records.write(jsonfast.dumps(record.to_json(self.origin_ns)) + b"\n")
-        self._records.flush()
+        if self._records is not None:
+            self._records.write(record)
 
     def close(self) -> None:
         if self._records is not None:

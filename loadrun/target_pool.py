@@ -14,22 +14,20 @@ import contextlib
 import random
 from collections.abc import AsyncIterator, Callable, Iterator, Sequence
 from dataclasses import dataclass
-from pathlib import Path
-from typing import IO, Any
+from typing import Any
 
 import anyio
 
-from loadrun import jsonfast
 from loadrun.answers import AnswerTap
 from loadrun.arrivals import TraceArrivals
 from loadrun.caution import check_remote_caps
 from loadrun.client import ChatClient
+from loadrun.cost import MILLION, SECONDS_PER_HOUR
 from loadrun.driver import ClosedLoopPlan, Execute, LevelResult, LoadPlan, run_closed_loop, run_open_loop
-from loadrun.errors import StoreError, UsageError
+from loadrun.errors import UsageError
 from loadrun.profile import Profile
 from loadrun.record import Record
 from loadrun.runner import MeasureSettings
-from loadrun.store import RECORDS_FILE
 from loadrun.target import Target
 from loadrun.targets import Prices, TargetSpec
 from loadrun.timeouts import Timeouts
@@ -38,7 +36,6 @@ from loadrun.workload import Conversation
 
 __all__ = [
     "LevelOverrides",
-    "RecordsFile",
     "TargetBill",
     "blended_bill",
     "check_targets",
@@ -46,9 +43,6 @@ __all__ = [
     "open_clients",
     "run_level",
 ]
-
-MILLION = 1_000_000
-SECONDS_PER_HOUR = 3600.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -210,27 +204,3 @@ async def run_level(
     offsets = plan.arrivals.offsets_s(random.Random(f"{seed}:arrivals"))
     arrivals = zip(offsets, conversations, strict=False)
     return await run_open_loop(plan, execute, arrivals, on_record, stop=stop)
-
-
-class RecordsFile:
-    """A records file of a multi-target run: each line a Record plus the labels given."""
-
-    def __init__(self, folder: Path | None, origin_ns: int, name: str = RECORDS_FILE) -> None:
-        self.origin_ns = origin_ns
-        self._handle: IO[bytes] | None = None
-        if folder is not None:
-            try:
-                self._handle = open(folder / name, "ab")  # noqa: SIM115 - closed in close()
-            except OSError as exc:
-                raise StoreError(f"cannot open {folder / name}: {exc.strerror or exc}") from exc
-
-    def write(self, record: Record, **labels: Any) -> None:
-        if self._handle is None:
-            return
-        self._handle.write(jsonfast.dumps({**record.to_json(self.origin_ns), **labels}) + b"\n")
-        self._handle.flush()
-
-    def close(self) -> None:
-        if self._handle is not None:
-            self._handle.close()
-            self._handle = None

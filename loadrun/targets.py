@@ -33,6 +33,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from loadrun.cost import MILLION, SECONDS_PER_HOUR
 from loadrun.errors import TargetUnreachable, UsageError
 from loadrun.target import Target, is_loopback_host
 from loadrun.transports import TRANSPORT_NAMES
@@ -41,8 +42,6 @@ from loadrun.transports.base import Endpoint
 __all__ = ["Prices", "TargetSpec", "TargetsFile", "TransportOptions", "load_targets", "started_targets"]
 
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
-_TOKENS_PER_MILLION = 1_000_000
-_SECONDS_PER_HOUR = 3600.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -68,7 +67,7 @@ class Prices:
             raise ValueError("these prices are not per token")
         return (
             input_tokens * (self.input_per_million or 0.0) + output_tokens * (self.output_per_million or 0.0)
-        ) / _TOKENS_PER_MILLION
+        ) / MILLION
 
     def hourly_request_cost(self, requests_per_s: float) -> float:
         """Cost of one request when a server billed by the hour completes ``requests_per_s``."""
@@ -76,7 +75,7 @@ class Prices:
             raise ValueError("these prices are not per hour")
         if requests_per_s <= 0:
             raise ValueError("no request completed: the cost per request is unbounded")
-        return self.per_hour / _SECONDS_PER_HOUR / requests_per_s
+        return self.per_hour / SECONDS_PER_HOUR / requests_per_s
 
     def describe(self) -> dict[str, Any]:
         return {
