@@ -196,6 +196,10 @@ def run_against_mmc(
     return records, summary, report
 
 
+MEASURE_ATTEMPTS = 3
+"""Runs of one (c, utilisation) pair at most, until the generator sent a Poisson stream."""
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize(("servers", "rho", "count"), [(1, 0.5, 500), (3, 0.7, 2000)])
 def test_open_loop_poisson_against_mmc_matches_erlang_c(
@@ -218,18 +222,25 @@ def test_open_loop_poisson_against_mmc_matches_erlang_c(
     mu = 1000.0 / MEAN_SERVICE_MS
     lam = rho * servers * mu
     engine = engine_toml(tmp_path / "mmc.toml", servers, MEAN_SERVICE_MS)
-    records, summary, report = run_against_mmc(engine, servers, lam, count)
-    assert summary["requests"]["by_outcome"] == {"ok": count}
-    # The queue saw a Poisson stream: the gaps between the actual sends (due times plus
-    # the generator's lateness) are still exponential (scipy.stats.kstest).
-    sends = sorted(record.send_ns for record in records)
-    gaps_s = [(later - earlier) / 1e9 for earlier, later in itertools.pairwise(sends)]
-    faithful = stats.kstest(gaps_s, "expon", args=(0, 1 / lam))
-    arrivals = summary["arrivals"]
-    print(
-        f"\nsends: KS p {faithful.pvalue:.3f}; send lag p50 {arrivals['send_lag_p50_ms']} ms, "
-        f"p99 {arrivals['send_lag_p99_ms']} ms, max {arrivals['send_lag_max_ms']} ms"
-    )
+    # The queue must have seen a Poisson stream: the gaps between the actual sends (due
+    # times plus the generator's lateness) still exponential (scipy.stats.kstest). A busy
+    # shared machine can stall the generator for some milliseconds and bunch the sends
+    # (seen once at 210/s: send lag p99 7 ms, KS p 2e-7); such a run says nothing about
+    # the queue, so it is measured again, as a user would after a generator warning. The
+    # arrival seed is fixed: a faithful generator gives the same p each time (0.3-0.7).
+    for _attempt in range(MEASURE_ATTEMPTS):
+        records, summary, report = run_against_mmc(engine, servers, lam, count)
+        assert summary["requests"]["by_outcome"] == {"ok": count}
+        sends = sorted(record.send_ns for record in records)
+        gaps_s = [(later - earlier) / 1e9 for earlier, later in itertools.pairwise(sends)]
+        faithful = stats.kstest(gaps_s, "expon", args=(0, 1 / lam))
+        arrivals = summary["arrivals"]
+        print(
+            f"\nsends: KS p {faithful.pvalue:.3f}; send lag p50 {arrivals['send_lag_p50_ms']} ms, "
+            f"p99 {arrivals['send_lag_p99_ms']} ms, max {arrivals['send_lag_max_ms']} ms"
+        )
+        if faithful.pvalue > 0.01:
+            break
     assert faithful.pvalue > 0.01, (faithful, arrivals)
     records.sort(key=lambda record: record.send_ns)
     ends = sorted(record.end_ns for record in records)
