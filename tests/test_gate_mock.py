@@ -10,6 +10,7 @@ output tokens each) so that 40 repetitions stay cheap.
 from __future__ import annotations
 
 import collections
+import json
 import os
 import re
 import shlex
@@ -23,7 +24,7 @@ from pathlib import Path
 
 import pytest
 
-from loadrun.gate import GateReport, GateSettings, Verdict, gate_measure
+from loadrun.gate import GateReport, GateSettings, Verdict, gate_measure, validity_problems
 from loadrun.history import History, RunFilter
 from loadrun.profile import LoadSpec, Profile, RequestSpec
 from loadrun.runner import MeasureSettings, embedded_mock
@@ -72,28 +73,40 @@ class Nights:
     machine, not the target; on a run this short one 5 ms scheduling stall decides the
     loop-lag p99). Each night is tried at most three times and every re-run is counted."""
 
-    def __init__(self, settings: GateSettings) -> None:
+    def __init__(self, settings: GateSettings, requests: int = 64) -> None:
         self.settings = settings
+        self.requests = requests
         self.reruns = 0
 
-    def run(self, target: Target, requests: int = 64) -> GateReport:
+    def run(self, target: Target) -> GateReport:
         for _ in range(3):
-            report = gate_measure(measuring(target, requests), self.settings)
-            if not generator_limited_only(report):
+            report = gate_measure(measuring(target, self.requests), self.settings)
+            if not generator_limited_only(report.verdict, report.reasons):
                 return report
             self.reruns += 1
+            time.sleep(RERUN_PAUSE_S)
         return report
 
 
-def generator_limited_only(report: GateReport) -> bool:
-    return report.verdict is Verdict.INVALID and all(
-        reason.startswith("generator-limited") for reason in report.reasons
-    )
+RERUN_PAUSE_S = 2.0
+"""A night the generator could not judge is re-run after this pause, so that a burst of
+contention on the machine can pass (a nightly job would retry later, too)."""
+
+
+def generator_limited_only(verdict: Verdict, reasons: list[str]) -> bool:
+    return verdict is Verdict.INVALID and all(reason.startswith("generator-limited") for reason in reasons)
 
 
 def test_an_engine_25_percent_slower_per_step_is_a_regression(normal: Target, tmp_path: Path) -> None:
+    """Every default rule flags the slower engine, not only one of them.
+
+    Nights of 192 requests: with 64, a p95 rests on its top three samples, and on a busy
+    machine (measured with a busy loop on the other core) 1 night in 10 had a TTFT p95
+    interval reaching down to x1.146, under the 15 % limit, although its ratio was x1.24.
+    With 192, the lowest of 10 such nights was x1.226.
+    """
     settings = gating(tmp_path / "history.sqlite3")
-    nights = Nights(settings)
+    nights = Nights(settings, requests=192)
     assert nights.run(normal).verdict is Verdict.NO_BASELINE
     assert nights.run(normal).verdict is Verdict.PASS
     base = load_config("small-fast")
@@ -176,6 +189,9 @@ def test_the_readme_nightly_example_works_against_the_embedded_mock(tmp_path: Pa
     redirected into the test's folder, and the webhook option is dropped (test_alerts.py
     covers it). Each night still lasts about 15 s: the profile's multi-turn conversations
     pause between turns, and a client in a pause finishes it before the run ends.
+
+    A night the gate calls invalid only because the generator was limited is a verdict on
+    the test machine, not on the example: it is re-run (at most twice in all), as Nights does.
     """
     args = readme_nightly_command()
     shutil.copytree(REPO / "profiles", tmp_path / "profiles")
@@ -187,18 +203,25 @@ def test_the_readme_nightly_example_works_against_the_embedded_mock(tmp_path: Pa
     args += ["-n", "32", "-c", "16", "--warmup", "0.2", "--min-samples", "30"]
     (tmp_path / "out").mkdir(exist_ok=True)
     env = {key: value for key, value in os.environ.items() if not key.startswith("LOADRUN")}
+    reruns = 0
     for night, verdict in ((1, "NO BASELINE YET"), (2, "PASS")):
-        result = subprocess.run(
-            [sys.executable, "-m", "loadrun", *args],
-            cwd=tmp_path,
-            capture_output=True,
-            text=True,
-            timeout=110,
-            stdin=subprocess.DEVNULL,
-            env=env,
-        )
+        for _ in range(3):
+            result = subprocess.run(
+                [sys.executable, "-m", "loadrun", *args],
+                cwd=tmp_path,
+                capture_output=True,
+                text=True,
+                timeout=110,
+                stdin=subprocess.DEVNULL,
+                env=env,
+            )
+            if result.returncode != 2 or not generator_limited_folder(newest_run_folder(tmp_path / "runs")):
+                break
+            reruns += 1
+            time.sleep(RERUN_PAUSE_S)
         assert result.returncode == 0, (night, result.stdout, result.stderr)
         assert verdict in result.stdout, result.stdout
+    assert reruns <= 2
     assert (tmp_path / "loadrun.prom").is_file()
     assert list((tmp_path / "out").glob("*.xml"))
     listing = subprocess.run(
@@ -209,4 +232,16 @@ def test_the_readme_nightly_example_works_against_the_embedded_mock(tmp_path: Pa
         timeout=60,
     )
     assert listing.returncode == 0, listing.stderr
-    assert [line.count('"verdict"') for line in listing.stdout.splitlines()] == [1, 1]
+    verdicts = [json.loads(line)["verdict"] for line in listing.stdout.splitlines()]
+    assert sorted(verdicts) == sorted(["no_baseline", "pass"] + ["invalid"] * reruns)
+
+
+def newest_run_folder(runs: Path) -> Path:
+    return max(runs.iterdir(), key=lambda folder: folder.name)
+
+
+def generator_limited_folder(folder: Path) -> bool:
+    """True when the gate's only objection to the run in ``folder`` is a limited generator."""
+    summary = json.loads((folder / "summary.json").read_text())
+    reasons = validity_problems(summary, GateSettings(history_path=folder / "unused", min_samples=30))
+    return generator_limited_only(Verdict.INVALID, reasons) and bool(reasons)
