@@ -218,6 +218,7 @@ def test_the_readme_nightly_example_works_against_the_embedded_mock(tmp_path: Pa
             if result.returncode != 2 or not generator_limited_folder(newest_run_folder(tmp_path / "runs")):
                 break
             reruns += 1
+            print(f"\nnight {night} re-run: {result.stdout}")
             time.sleep(RERUN_PAUSE_S)
         assert result.returncode == 0, (night, result.stdout, result.stderr)
         assert verdict in result.stdout, result.stdout
@@ -237,7 +238,8 @@ def test_the_readme_nightly_example_works_against_the_embedded_mock(tmp_path: Pa
 
 
 def newest_run_folder(runs: Path) -> Path:
-    return max(runs.iterdir(), key=lambda folder: folder.name)
+    """The latest run folder under ``runs`` (which also holds the history database)."""
+    return max((entry for entry in runs.iterdir() if entry.is_dir()), key=lambda folder: folder.name)
 
 
 def generator_limited_folder(folder: Path) -> bool:
