@@ -58,7 +58,14 @@ def test_itl_median_equals_the_engine_step_at_concurrency_one(mock_target: Targe
 def test_throughput_and_latency_match_the_engine_ground_truth(mock_target: Target, concurrency: int) -> None:
     """Within 10 % of the closed form; Little's law (L = lambda W, Little 1961) within 5 %."""
     truth = ground_truth(load_config(ENGINE), concurrency, PROMPT_TOKENS, OUTPUT_TOKENS)
-    summary = measure(settings_for(mock_target, concurrency)).summary
+    # The generator must have kept up, or the comparison says nothing about the engine. On a
+    # shared machine a stall of its own can flag a run whose figures were right (a CI run:
+    # 6.258 requests/s against 6.253, loop lag over its limit), so a flagged run is measured
+    # again, at most twice, before the check.
+    for _attempt in range(3):
+        summary = measure(settings_for(mock_target, concurrency)).summary
+        if not summary["generator"]["limited"]:
+            break
     # Shown on failure: a miss on a busy machine should say whether the generator lagged.
     seen = {"truth": truth, "generator": summary["generator"], "throughput": summary["throughput"]}
     assert summary["requests"]["failed"] == 0
