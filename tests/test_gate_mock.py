@@ -94,7 +94,8 @@ class Nights:
             report = gate_measure(measuring(target, self.requests), self.settings)
             pacing_max_us = httpx.get(f"{mock}/mock/stats", timeout=10).json()["pacing_error_max_us"] or 0
             mock_stalled = pacing_max_us > MOCK_STALL_LIMIT_MS * 1000
-            if not mock_stalled and not generator_limited_only(report.verdict, report.reasons):
+            generator_limited = report.verdict is Verdict.INVALID and only_generator_limited(report.reasons)
+            if not mock_stalled and not generator_limited:
                 return report
             self.reruns += 1
             print(f"\nre-run: mock step timer {pacing_max_us / 1000:.1f} ms late at most; {report.reasons}")
@@ -112,8 +113,9 @@ RERUN_PAUSE_S = 2.0
 machine can pass (a nightly job would retry later, too)."""
 
 
-def generator_limited_only(verdict: Verdict, reasons: list[str]) -> bool:
-    return verdict is Verdict.INVALID and all(reason.startswith("generator-limited") for reason in reasons)
+def only_generator_limited(reasons: list[str]) -> bool:
+    """True when there are reasons and every one is the generator's."""
+    return bool(reasons) and all(reason.startswith("generator-limited") for reason in reasons)
 
 
 def test_an_engine_25_percent_slower_per_step_is_a_regression(normal: Target, tmp_path: Path) -> None:
@@ -264,5 +266,6 @@ def newest_run_folder(runs: Path) -> Path:
 def generator_limited_folder(folder: Path) -> bool:
     """True when the gate's only objection to the run in ``folder`` is a limited generator."""
     summary = json.loads((folder / "summary.json").read_text())
-    reasons = validity_problems(summary, GateSettings(history_path=folder / "unused", min_samples=30))
-    return generator_limited_only(Verdict.INVALID, reasons) and bool(reasons)
+    return only_generator_limited(
+        validity_problems(summary, GateSettings(history_path=folder / "unused", min_samples=30))
+    )
