@@ -59,8 +59,12 @@ class GateOutputs:
             if path.is_dir():
                 raise UsageError(f"{option} {path}: is a folder, not a file")
         if self.webhook_url is not None:
-            parts = urlsplit(self.webhook_url)
-            if parts.scheme not in ("http", "https") or not parts.hostname:
+            try:  # a bracket left open or a port out of range raises ValueError
+                parts = urlsplit(self.webhook_url)
+                valid = parts.scheme in ("http", "https") and bool(parts.hostname) and parts.port != 0
+            except ValueError:
+                valid = False
+            if not valid:
                 raise UsageError("the webhook must be an http or https URL")
         if self.webhook_timeout_s <= 0 or self.webhook_retries < 0 or self.webhook_backoff_s < 0:
             raise UsageError("webhook timeout must be positive, retries and backoff not negative")

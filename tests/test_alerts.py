@@ -196,6 +196,8 @@ def test_files_are_replaced_atomically(tmp_path: Path) -> None:
         GateOutputs(junit_path=Path("/nonexistent-folder/x.xml")),
         GateOutputs(prometheus_path=Path("/")),
         GateOutputs(webhook_url="ftp://127.0.0.1/x"),
+        GateOutputs(webhook_url="A://["),  # found by the command-line fuzz test: urlsplit raised
+        GateOutputs(webhook_url="http://127.0.0.1:99999/x"),
         GateOutputs(webhook_url="http://127.0.0.1/x", webhook_retries=-1),
     ],
 )
