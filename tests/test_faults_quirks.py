@@ -19,6 +19,7 @@ from typing import Any
 
 import httpx
 import pytest
+from _reruns import first_faithful
 
 from loadrun.profile import LoadSpec, Profile, RequestSpec
 from loadrun.runner import MeasureSettings, RunResult, measure
@@ -60,7 +61,11 @@ def run_with(mock: RunningMock, tmp_path: Path, quirks: dict[str, Any], concurre
         first_token_timeout_s=5.0,
         idle_timeout_s=5.0,
     )
-    return measure(settings)
+    # The checks compare TTFT with the closed form: a run in which the generator or the mock
+    # fell behind (a shared machine's stall) is measured again, at most twice (_reruns).
+    return first_faithful(
+        lambda attempt: measure(dataclasses.replace(settings, out_dir=tmp_path / f"try{attempt}")), mock.url
+    )
 
 
 def step_s() -> float:

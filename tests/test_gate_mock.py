@@ -22,8 +22,8 @@ from collections.abc import Iterator
 from dataclasses import replace
 from pathlib import Path
 
-import httpx
 import pytest
+from _reruns import RERUN_PAUSE_S, mock_stall, pause_before_rerun, reset_mock_timing
 
 from loadrun.gate import GateReport, GateSettings, Verdict, gate_measure, gate_summary, validity_problems
 from loadrun.history import History, RunFilter
@@ -73,7 +73,7 @@ class Nights:
     the engine under test:
 
     - the mock did not keep its engine's pace: its own step timer (``/mock/stats``) ran
-      more than MOCK_STALL_LIMIT_MS late. The machine is a shared virtual one that loses
+      more than _reruns.MOCK_LATE_LIMIT_MS late. The machine is a shared virtual one that loses
       CPU to its host now and then; one 18 ms stall of the mock during a slow night moved
       its TPOT p95 ratio from x1.25 to x1.45 in a full-suite run. Such a night is measured
       again before it is gated, so it never enters the history: stored, it would have
@@ -94,11 +94,11 @@ class Nights:
     def run(self, target: Target, tries: int = 3) -> GateReport:
         mock = target.base_url.removesuffix("/v1")
         for attempt in range(1, tries + 1):
-            httpx.post(f"{mock}/mock/stats/reset", timeout=10).raise_for_status()
+            reset_mock_timing(mock)
             result = measure(replace(measuring(target, self.requests), record_history=False))
-            pacing_max_us = httpx.get(f"{mock}/mock/stats", timeout=10).json()["pacing_error_max_us"] or 0
-            if pacing_max_us > MOCK_STALL_LIMIT_MS * 1000 and attempt < tries:
-                self.rerun(f"mock step timer {pacing_max_us / 1000:.1f} ms late at most")
+            stall = mock_stall(mock)
+            if stall and attempt < tries:
+                self.rerun(stall)
                 continue
             report = gate_summary(result.summary, result.config, self.settings)
             self.gated += 1
@@ -110,18 +110,7 @@ class Nights:
 
     def rerun(self, why: str) -> None:
         self.reruns += 1
-        print(f"\nre-run: {why}")
-        time.sleep(RERUN_PAUSE_S)
-
-
-MOCK_STALL_LIMIT_MS = 5.0
-"""The mock's step timer late by more than this: its engine did not run as configured
-(on an idle machine the latest step of a night was 1.2-3.2 ms late, 8 nights; 5 ms is
-the generator's own limit, common practice, no source)."""
-
-RERUN_PAUSE_S = 2.0
-"""A night that is re-run waits this long first, so that a burst of contention on the
-machine can pass (a nightly job would retry later, too)."""
+        pause_before_rerun(why, self.reruns)
 
 
 def only_generator_limited(reasons: list[str]) -> bool:
