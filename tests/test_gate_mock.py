@@ -167,7 +167,7 @@ def test_no_change_passes_in_at_least_95_percent_of_40_runs(normal: Target, tmp_
     """The false-alarm rate of the default rules (ttft, tpot and e2e p95, 15 %) on an unchanged
     mock: the first run becomes the baseline, then 40 nights are each gated against the
     median of the last 5 that passed, as a nightly job would do. Nights the generator could
-    not judge are re-run (see Nights) and reported; at most 10 re-runs in all."""
+    not judge are re-run (see Nights) and reported; at most one re-run per night on average."""
     settings = gating(tmp_path / "history.sqlite3")
     nights = Nights(settings)
     started = time.monotonic()
@@ -187,7 +187,7 @@ def test_no_change_passes_in_at_least_95_percent_of_40_runs(normal: Target, tmp_
     print(f"highest lower ends of the ratio intervals: {worst_low}")
     assert verdicts["regression"] / REPETITIONS <= 0.05
     assert verdicts["pass"] / REPETITIONS >= 0.95, dict(verdicts)
-    assert nights.reruns <= 10
+    assert nights.reruns <= REPETITIONS  # one per night on average, as for the slower engine
     with History(settings.history_path) as history:
         assert len(history.find(RunFilter(limit=200))) == nights.gated
 

@@ -16,6 +16,7 @@ import time
 from collections import Counter
 from dataclasses import replace
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import pytest
@@ -310,12 +311,17 @@ def test_the_command_line_runs_two_workers_and_the_merged_folder_reads_like_any_
             [sys.executable, "-m", "loadrun", *args], capture_output=True, text=True, timeout=90, cwd=tmp_path
         )
 
-    measured = loadrun(
-        "measure", "-c", "2", "-d", "1", "--warmup", "0.2", "--workers", "2", "--mock-engine", ENGINE,
-        "--output-tokens", "8", "--out", "runs", "--json",
-    )  # fmt: skip
-    assert measured.returncode == 0, measured.stderr
-    summary = orjson.loads(measured.stdout)
+    def measure_with_two_workers(_attempt: int) -> SimpleNamespace:
+        measured = loadrun(
+            "measure", "-c", "2", "-d", "1", "--warmup", "0.2", "--workers", "2", "--mock-engine", ENGINE,
+            "--output-tokens", "8", "--out", "runs", "--json",
+        )  # fmt: skip
+        assert measured.returncode == 0, measured.stderr
+        return SimpleNamespace(summary=orjson.loads(measured.stdout))
+
+    # The gate at the end refuses a generator-limited run (exit 2), and a shared machine's
+    # stall can flag one (a run with simulated stalls did): such a run is measured again.
+    summary = first_faithful(measure_with_two_workers).summary
     folder = tmp_path / summary["run_folder"]  # relative to the command's working folder
     assert summary["workers"]["count"] == 2 and summary["workers"]["complete"]
     assert summary["requests"]["measured"] == sum(s["measured"] for s in summary["workers"]["shards"])
