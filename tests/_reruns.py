@@ -11,8 +11,8 @@ figures the tests assert: the generator's own loop lag, and the mock's own step 
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
-from typing import Any, Protocol, TypeVar
+from collections.abc import Callable, Sequence
+from typing import Any, TypeVar
 
 import httpx
 
@@ -48,25 +48,29 @@ def pause_before_rerun(why: str, rerun: int) -> None:
     time.sleep(RERUN_PAUSE_S)
 
 
-class Measured(Protocol):
-    @property
-    def summary(self) -> dict[str, Any]: ...
+def generator_notes(result: Any) -> list[str]:
+    """The generator's own complaint about a run (``result.summary``), if it made one."""
+    generator = result.summary["generator"]
+    return [generator["health"]["note"]] if generator["limited"] else []
 
 
-Result = TypeVar("Result", bound=Measured)
+Result = TypeVar("Result")
 
 
-def first_faithful(run: Callable[[int], Result], mock_url: str | None = None, attempts: int = 3) -> Result:
+def first_faithful(
+    run: Callable[[int], Result],
+    mock_urls: Sequence[str] = (),
+    attempts: int = 3,
+    flagged: Callable[[Result], list[str]] = generator_notes,
+) -> Result:
     """The first of at most `attempts` runs (``run(attempt)``) in which the generator kept up
-    and the mock at `mock_url`, if given, kept its engine's pace; else the last."""
+    (``flagged`` says nothing) and every mock at `mock_urls` kept its engine's pace; else
+    the last."""
     for attempt in range(attempts):
-        if mock_url is not None:
-            reset_mock_timing(mock_url)
+        for url in mock_urls:
+            reset_mock_timing(url)
         result = run(attempt)
-        summary = result.summary
-        reasons = [summary["generator"]["health"]["note"]] if summary["generator"]["limited"] else []
-        stall = mock_stall(mock_url) if mock_url is not None else None
-        reasons += [stall] if stall else []
+        reasons = flagged(result) + [stall for url in mock_urls if (stall := mock_stall(url))]
         if not reasons or attempt == attempts - 1:
             break
         pause_before_rerun("; ".join(reasons), attempt + 1)

@@ -64,7 +64,7 @@ def run_with(mock: RunningMock, tmp_path: Path, quirks: dict[str, Any], concurre
     # The checks compare TTFT with the closed form: a run in which the generator or the mock
     # fell behind (a shared machine's stall) is measured again, at most twice (_reruns).
     return first_faithful(
-        lambda attempt: measure(dataclasses.replace(settings, out_dir=tmp_path / f"try{attempt}")), mock.url
+        lambda attempt: measure(dataclasses.replace(settings, out_dir=tmp_path / f"try{attempt}")), [mock.url]
     )
 
 

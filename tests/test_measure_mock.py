@@ -55,7 +55,7 @@ def test_itl_median_equals_the_engine_step_at_concurrency_one(mock_target: Targe
     config = load_config(ENGINE)
     step_ms = config.step_base_ms + config.decode_per_seq_ms
     summary = first_faithful(
-        lambda _attempt: measure(settings_for(mock_target, 1, duration_s=2.0)), mock_url(mock_target)
+        lambda _attempt: measure(settings_for(mock_target, 1, duration_s=2.0)), [mock_url(mock_target)]
     ).summary
     itl_p50 = summary["latency"]["itl"]["p50_ms"]
     assert itl_p50 == pytest.approx(step_ms, rel=0.02)
@@ -70,7 +70,7 @@ def test_throughput_and_latency_match_the_engine_ground_truth(mock_target: Targe
     # flagged at 6.258 requests/s against 6.253), so such a run is measured again, at most
     # twice, before the check.
     summary = first_faithful(
-        lambda _attempt: measure(settings_for(mock_target, concurrency)), mock_url(mock_target)
+        lambda _attempt: measure(settings_for(mock_target, concurrency)), [mock_url(mock_target)]
     ).summary
     # Shown on failure: a miss on a busy machine should say whether the generator lagged.
     seen = {"truth": truth, "generator": summary["generator"], "throughput": summary["throughput"]}
