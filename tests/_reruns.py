@@ -61,16 +61,14 @@ def first_faithful(
     run: Callable[[int], Result],
     mock_urls: Sequence[str] = (),
     attempts: int = 3,
-    flagged: Callable[[Result], list[str]] = generator_notes,
 ) -> Result:
     """The first of at most `attempts` runs (``run(attempt)``) in which the generator kept up
-    (``flagged`` says nothing) and every mock at `mock_urls` kept its engine's pace; else
-    the last."""
+    and every mock at `mock_urls` kept its engine's pace; else the last."""
     for attempt in range(attempts):
         for url in mock_urls:
             reset_mock_timing(url)
         result = run(attempt)
-        reasons = flagged(result) + [stall for url in mock_urls if (stall := mock_stall(url))]
+        reasons = generator_notes(result) + [stall for url in mock_urls if (stall := mock_stall(url))]
         if not reasons or attempt == attempts - 1:
             break
         pause_before_rerun("; ".join(reasons), attempt + 1)
