@@ -21,9 +21,17 @@ MOCK_LATE_LIMIT_MS = 5.0
 an idle machine the latest step of a 64-request night was 1.2-3.2 ms late, 8 nights; 5 ms
 is the generator's own limit, common practice, no source)."""
 
+ATTEMPTS = 3
+"""Tries of one run at most, the first included (DEVELOPERS.md)."""
+
 RERUN_PAUSE_S = 2.0
 """A run that is measured again waits this long first, so that a burst of contention on
 the machine can pass."""
+
+
+def mock_url_of(target: Any) -> str:
+    """The mock's own address (for ``/mock/...``) from the target that loads it."""
+    return str(target.base_url).removesuffix("/v1")
 
 
 def reset_mock_timing(mock_url: str) -> None:
@@ -60,7 +68,7 @@ Result = TypeVar("Result")
 def first_faithful(
     run: Callable[[int], Result],
     mock_urls: Sequence[str] = (),
-    attempts: int = 3,
+    attempts: int = ATTEMPTS,
 ) -> Result:
     """The first of at most `attempts` runs (``run(attempt)``) in which the generator kept up
     and every mock at `mock_urls` kept its engine's pace; else the last."""

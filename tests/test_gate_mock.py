@@ -23,7 +23,7 @@ from dataclasses import replace
 from pathlib import Path
 
 import pytest
-from _reruns import RERUN_PAUSE_S, mock_stall, pause_before_rerun, reset_mock_timing
+from _reruns import ATTEMPTS, RERUN_PAUSE_S, mock_stall, mock_url_of, pause_before_rerun, reset_mock_timing
 
 from loadrun.gate import GateReport, GateSettings, Verdict, gate_measure, gate_summary, validity_problems
 from loadrun.history import History, RunFilter
@@ -91,8 +91,8 @@ class Nights:
         self.reruns = 0
         self.gated = 0
 
-    def run(self, target: Target, tries: int = 3) -> GateReport:
-        mock = target.base_url.removesuffix("/v1")
+    def run(self, target: Target, tries: int = ATTEMPTS) -> GateReport:
+        mock = mock_url_of(target)
         for attempt in range(1, tries + 1):
             reset_mock_timing(mock)
             result = measure(replace(measuring(target, self.requests), record_history=False))

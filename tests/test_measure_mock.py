@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from _reruns import first_faithful
+from _reruns import first_faithful, mock_url_of
 
 from loadrun.profile import LoadSpec, Profile, RequestSpec
 from loadrun.runner import MeasureSettings, embedded_mock, measure
@@ -34,10 +34,6 @@ def mock_target() -> Iterator[Target]:
         yield target
 
 
-def mock_url(target: Target) -> str:
-    return target.base_url.removesuffix("/v1")
-
-
 def settings_for(target: Target, concurrency: int, **changes: Any) -> MeasureSettings:
     profile = Profile(
         name="itest",
@@ -55,7 +51,7 @@ def test_itl_median_equals_the_engine_step_at_concurrency_one(mock_target: Targe
     config = load_config(ENGINE)
     step_ms = config.step_base_ms + config.decode_per_seq_ms
     summary = first_faithful(
-        lambda _attempt: measure(settings_for(mock_target, 1, duration_s=2.0)), [mock_url(mock_target)]
+        lambda _attempt: measure(settings_for(mock_target, 1, duration_s=2.0)), [mock_url_of(mock_target)]
     ).summary
     itl_p50 = summary["latency"]["itl"]["p50_ms"]
     assert itl_p50 == pytest.approx(step_ms, rel=0.02)
@@ -76,7 +72,7 @@ def test_throughput_and_latency_match_the_engine_ground_truth(
     # flagged at 6.258 requests/s against 6.253), so such a run is measured again, at most
     # twice, before the check.
     settings = settings_for(mock_target, concurrency, duration_s=seconds)
-    summary = first_faithful(lambda _attempt: measure(settings), [mock_url(mock_target)]).summary
+    summary = first_faithful(lambda _attempt: measure(settings), [mock_url_of(mock_target)]).summary
     # Shown on failure: a miss on a busy machine should say whether the generator lagged.
     seen = {"truth": truth, "generator": summary["generator"], "throughput": summary["throughput"]}
     assert summary["requests"]["failed"] == 0

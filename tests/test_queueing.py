@@ -19,7 +19,7 @@ from typing import Any
 import anyio
 import httpx
 import pytest
-from _reruns import pause_before_rerun
+from _reruns import ATTEMPTS, pause_before_rerun
 from scipy import stats
 
 from loadrun.erlang import erlang_c, mean_time_in_system_s, mean_wait_s, service_level, wait_longer_than
@@ -194,10 +194,6 @@ def run_against_mmc(
     return records, summary, report
 
 
-MEASURE_ATTEMPTS = 3
-"""Runs of one (c, utilisation) pair at most, until the generator sent a Poisson stream."""
-
-
 @pytest.mark.slow
 @pytest.mark.parametrize(
     ("servers", "rho", "count", "service_ms"), [(1, 0.5, 500, 10.0), (3, 0.7, 1500, 40.0)]
@@ -238,7 +234,7 @@ def test_open_loop_poisson_against_mmc_matches_erlang_c(
     # the queue, so it is measured again, as a user would after a generator warning. The
     # arrival seed is fixed: a faithful generator gives about the same p each time (0.07
     # for M/M/1, 0.6-0.8 for M/M/3 in the runs seen).
-    for attempt in range(1, MEASURE_ATTEMPTS + 1):
+    for attempt in range(1, ATTEMPTS + 1):
         records, summary, report = run_against_mmc(engine, servers, lam, count)
         assert summary["requests"]["by_outcome"] == {"ok": count}
         sends = sorted(record.send_ns for record in records)
@@ -251,7 +247,7 @@ def test_open_loop_poisson_against_mmc_matches_erlang_c(
         )
         if faithful.pvalue > 0.01:
             break
-        if attempt < MEASURE_ATTEMPTS:
+        if attempt < ATTEMPTS:
             pause_before_rerun(f"the sends were not Poisson (KS p {faithful.pvalue:.3g})", attempt)
     assert faithful.pvalue > 0.01, (faithful, arrivals)
     records.sort(key=lambda record: record.send_ns)
